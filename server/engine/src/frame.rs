@@ -1,0 +1,1045 @@
+//! Frames as they arrive (raw pixels with a stride, or PNG/JPEG files), their validation, and their
+//! conversion to packed RGB over a region of interest.
+//!
+//! Every size, stride and length is checked before any pixel is read; a bad frame gives a [`FrameError`]
+//! that says what was expected.
+
+use std::fmt;
+
+use yuvutils_rs as yuv;
+
+/// Pixel layouts a frame may arrive in.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum PixelFormat {
+    /// Packed 8-bit red, green, blue.
+    Rgb8,
+    /// Packed 8-bit blue, green, red.
+    Bgr8,
+    /// Packed 8-bit red, green, blue, alpha (alpha ignored).
+    Rgba8,
+    /// Packed 8-bit blue, green, red, alpha (alpha ignored).
+    Bgra8,
+    /// 8-bit grey.
+    Gray8,
+    /// 4:2:0: a Y plane, then one interleaved U,V plane, both with the frame's stride.
+    Nv12,
+    /// 4:2:0: Y plane, U plane, V plane; chroma planes use half the stride.
+    I420,
+    /// 4:2:2 packed Y0 U Y1 V.
+    Yuyv,
+    /// A PNG file.
+    Png,
+    /// A JPEG file.
+    Jpeg,
+}
+
+impl PixelFormat {
+    /// Every format, in wire order.
+    pub const ALL: [PixelFormat; 10] = [
+        Self::Rgb8,
+        Self::Bgr8,
+        Self::Rgba8,
+        Self::Bgra8,
+        Self::Gray8,
+        Self::Nv12,
+        Self::I420,
+        Self::Yuyv,
+        Self::Png,
+        Self::Jpeg,
+    ];
+
+    /// Short lower-case name, as used on the command line and in files.
+    pub fn name(self) -> &'static str {
+        match self {
+            Self::Rgb8 => "rgb8",
+            Self::Bgr8 => "bgr8",
+            Self::Rgba8 => "rgba8",
+            Self::Bgra8 => "bgra8",
+            Self::Gray8 => "gray8",
+            Self::Nv12 => "nv12",
+            Self::I420 => "i420",
+            Self::Yuyv => "yuyv",
+            Self::Png => "png",
+            Self::Jpeg => "jpeg",
+        }
+    }
+
+    /// Parses [`PixelFormat::name`].
+    pub fn from_name(name: &str) -> Option<Self> {
+        Self::ALL
+            .into_iter()
+            .find(|f| f.name().eq_ignore_ascii_case(name))
+    }
+
+    /// True for encoded files (PNG, JPEG), whose size is read from the file.
+    pub fn is_encoded(self) -> bool {
+        matches!(self, Self::Png | Self::Jpeg)
+    }
+
+    /// True for YUV formats, which need a matrix and a range.
+    pub fn is_yuv(self) -> bool {
+        matches!(self, Self::Nv12 | Self::I420 | Self::Yuyv)
+    }
+
+    /// Bytes of one row of the first plane for a frame `width` pixels wide (raw formats only).
+    fn row_bytes(self, width: u64) -> u64 {
+        match self {
+            Self::Rgb8 | Self::Bgr8 => width * 3,
+            Self::Rgba8 | Self::Bgra8 => width * 4,
+            Self::Gray8 | Self::Nv12 | Self::I420 => width,
+            Self::Yuyv => width * 2,
+            Self::Png | Self::Jpeg => 0,
+        }
+    }
+
+    /// Horizontal and vertical chroma subsampling steps (1 for none).
+    fn chroma_steps(self) -> (u32, u32) {
+        match self {
+            Self::Nv12 | Self::I420 => (2, 2),
+            Self::Yuyv => (2, 1),
+            _ => (1, 1),
+        }
+    }
+}
+
+impl fmt::Display for PixelFormat {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// The YUV to RGB matrix.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum YuvMatrix {
+    /// ITU-R BT.601.
+    #[default]
+    Bt601,
+    /// ITU-R BT.709.
+    Bt709,
+}
+
+/// The code range of YUV samples.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum YuvRange {
+    /// Y 16..235, U and V 16..240 (ITU-R BT.601 / BT.709 "limited" range).
+    #[default]
+    Limited,
+    /// 0..255.
+    Full,
+}
+
+/// How YUV frames are to be read.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct YuvSpec {
+    /// Matrix.
+    pub matrix: YuvMatrix,
+    /// Range.
+    pub range: YuvRange,
+}
+
+/// A rectangle of the frame, in pixels.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Region {
+    /// Left edge.
+    pub x: u32,
+    /// Top edge.
+    pub y: u32,
+    /// Width.
+    pub width: u32,
+    /// Height.
+    pub height: u32,
+}
+
+impl Region {
+    /// The whole of a `width` x `height` frame.
+    pub fn whole(width: u32, height: u32) -> Self {
+        Self {
+            x: 0,
+            y: 0,
+            width,
+            height,
+        }
+    }
+
+    fn fits(&self, width: u32, height: u32) -> bool {
+        self.width > 0
+            && self.height > 0
+            && u64::from(self.x) + u64::from(self.width) <= u64::from(width)
+            && u64::from(self.y) + u64::from(self.height) <= u64::from(height)
+    }
+}
+
+impl fmt::Display for Region {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}x{}+{}+{}", self.width, self.height, self.x, self.y)
+    }
+}
+
+/// Limits every frame is held to before any pixel is read.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct FrameLimits {
+    /// Largest accepted width in pixels.
+    pub max_width: u32,
+    /// Largest accepted height in pixels.
+    pub max_height: u32,
+}
+
+/// Default frame limits: 8192 x 8192 pixels, twice 4K UHD in each direction.
+pub const DEFAULT_FRAME_LIMITS: FrameLimits = FrameLimits {
+    max_width: 8192,
+    max_height: 8192,
+};
+
+impl Default for FrameLimits {
+    fn default() -> Self {
+        DEFAULT_FRAME_LIMITS
+    }
+}
+
+/// Why a frame cannot be read. Each message says what was expected.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum FrameError {
+    /// Width or height is zero.
+    #[error("{format} frame has size {width}x{height}; width and height must be at least 1")]
+    EmptySize {
+        format: PixelFormat,
+        width: u32,
+        height: u32,
+    },
+    /// Width or height exceeds the limits.
+    #[error(
+        "{format} frame is {width}x{height}, larger than the limit of {max_width}x{max_height}"
+    )]
+    TooLarge {
+        format: PixelFormat,
+        width: u32,
+        height: u32,
+        max_width: u32,
+        max_height: u32,
+    },
+    /// A chroma-subsampled format with an odd dimension.
+    #[error("{format} frame is {width}x{height}; {format} needs an even {which}")]
+    OddDimension {
+        format: PixelFormat,
+        width: u32,
+        height: u32,
+        which: &'static str,
+    },
+    /// The stride is shorter than a row.
+    #[error(
+        "{format} stride is {stride} bytes, shorter than one row of {row} bytes for width {width}"
+    )]
+    StrideTooShort {
+        format: PixelFormat,
+        stride: u64,
+        row: u64,
+        width: u32,
+    },
+    /// I420's chroma stride would not be whole.
+    #[error(
+        "i420 stride is {stride} bytes; it must be even so that the chroma planes have half of it"
+    )]
+    OddStride { stride: u64 },
+    /// The buffer length does not fit the size and stride.
+    #[error(
+        "{format} buffer is {got} bytes, expected {expected} for {width}x{height} with stride {stride}"
+    )]
+    BadLength {
+        format: PixelFormat,
+        got: u64,
+        expected: u64,
+        width: u32,
+        height: u32,
+        stride: u64,
+    },
+    /// An encoded frame is empty or cannot be decoded.
+    #[error("{format} frame could not be decoded: {reason}")]
+    DecodeFailed { format: PixelFormat, reason: String },
+    /// The region of interest does not fit inside the frame.
+    #[error("region of interest {region} does not fit inside the {width}x{height} frame")]
+    RegionOutside {
+        region: Region,
+        width: u32,
+        height: u32,
+    },
+    /// The colour converter refused the frame (should not happen after validation).
+    #[error("{format} colour conversion failed: {reason}")]
+    ConversionFailed { format: PixelFormat, reason: String },
+}
+
+impl FrameError {
+    /// A short machine-readable kind, stable across versions.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            Self::EmptySize { .. } => "empty_size",
+            Self::TooLarge { .. } => "too_large",
+            Self::OddDimension { .. } => "odd_dimension",
+            Self::StrideTooShort { .. } | Self::OddStride { .. } => "bad_stride",
+            Self::BadLength { .. } => "bad_length",
+            Self::DecodeFailed { .. } => "decode_failed",
+            Self::RegionOutside { .. } => "region_outside",
+            Self::ConversionFailed { .. } => "conversion_failed",
+        }
+    }
+}
+
+/// A frame as received: borrowed bytes and what the sender says they are.
+#[derive(Debug, Clone, Copy)]
+pub struct FrameRef<'a> {
+    /// Pixel format.
+    pub format: PixelFormat,
+    /// Width in pixels (ignored for PNG and JPEG).
+    pub width: u32,
+    /// Height in pixels (ignored for PNG and JPEG).
+    pub height: u32,
+    /// Bytes from one row to the next in the first plane; 0 for tightly packed rows.
+    pub stride: u32,
+    /// The bytes.
+    pub data: &'a [u8],
+}
+
+/// A validated raw frame: its geometry is known to fit its buffer.
+#[derive(Debug, Clone, Copy)]
+struct Checked<'a> {
+    format: PixelFormat,
+    width: u32,
+    height: u32,
+    stride: usize,
+    data: &'a [u8],
+}
+
+/// Packed RGB8 pixels.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct RgbImage {
+    /// Width in pixels.
+    pub width: u32,
+    /// Height in pixels.
+    pub height: u32,
+    /// `width * height * 3` bytes, red first.
+    pub data: Vec<u8>,
+}
+
+impl RgbImage {
+    fn reset(&mut self, width: u32, height: u32) {
+        self.width = width;
+        self.height = height;
+        self.data.clear();
+        self.data.resize(width as usize * height as usize * 3, 0);
+    }
+}
+
+/// Reusable buffers for [`to_rgb`], kept per session so that steady streams allocate nothing.
+#[derive(Debug, Default)]
+pub struct DecodeScratch {
+    aligned: RgbImage,
+    decoded: Vec<u8>,
+    chroma: Vec<u8>,
+}
+
+impl<'a> FrameRef<'a> {
+    /// Checks size, stride and length against the format and the limits, without reading any pixel.
+    fn check(&self, limits: &FrameLimits) -> Result<Checked<'a>, FrameError> {
+        let (format, width, height) = (self.format, self.width, self.height);
+        check_size(format, width, height, limits)?;
+        let (sx, sy) = format.chroma_steps();
+        if sx == 2 && width % 2 != 0 {
+            return Err(FrameError::OddDimension {
+                format,
+                width,
+                height,
+                which: "width",
+            });
+        }
+        if sy == 2 && height % 2 != 0 {
+            return Err(FrameError::OddDimension {
+                format,
+                width,
+                height,
+                which: "height",
+            });
+        }
+        let row = format.row_bytes(u64::from(width));
+        let stride = if self.stride == 0 {
+            row
+        } else {
+            u64::from(self.stride)
+        };
+        if stride < row {
+            return Err(FrameError::StrideTooShort {
+                format,
+                stride,
+                row,
+                width,
+            });
+        }
+        if format == PixelFormat::I420 && stride % 2 != 0 {
+            return Err(FrameError::OddStride { stride });
+        }
+        let h = u64::from(height);
+        // Bytes of the whole frame with every row padded to the stride, and the least the sender may send
+        // (the last row unpadded).
+        let (full, least) = match format {
+            PixelFormat::Nv12 => (
+                stride * h + stride * (h / 2),
+                stride * h + stride * (h / 2 - 1) + row,
+            ),
+            PixelFormat::I420 => {
+                let c = stride / 2;
+                (
+                    stride * h + 2 * c * (h / 2),
+                    stride * h + c * (h / 2) + c * (h / 2 - 1) + row / 2,
+                )
+            }
+            _ => (stride * h, stride * (h - 1) + row),
+        };
+        let got = self.data.len() as u64;
+        if got < least || got > full {
+            return Err(FrameError::BadLength {
+                format,
+                got,
+                expected: full,
+                width,
+                height,
+                stride,
+            });
+        }
+        Ok(Checked {
+            format,
+            width,
+            height,
+            stride: stride as usize,
+            data: self.data,
+        })
+    }
+}
+
+fn check_size(
+    format: PixelFormat,
+    width: u32,
+    height: u32,
+    limits: &FrameLimits,
+) -> Result<(), FrameError> {
+    if width == 0 || height == 0 {
+        return Err(FrameError::EmptySize {
+            format,
+            width,
+            height,
+        });
+    }
+    if width > limits.max_width || height > limits.max_height {
+        return Err(FrameError::TooLarge {
+            format,
+            width,
+            height,
+            max_width: limits.max_width,
+            max_height: limits.max_height,
+        });
+    }
+    Ok(())
+}
+
+/// Decodes a PNG or JPEG file to packed RGB8, refusing images beyond the limits before decoding pixels.
+fn decode_file(
+    format: PixelFormat,
+    data: &[u8],
+    limits: &FrameLimits,
+    out: &mut Vec<u8>,
+) -> Result<(u32, u32), FrameError> {
+    use image::ImageDecoder;
+    let fail = |reason: String| FrameError::DecodeFailed { format, reason };
+    if data.is_empty() {
+        return Err(fail("the file is empty".into()));
+    }
+    let cursor = std::io::Cursor::new(data);
+    let mut decoder: Box<dyn ImageDecoder> = match format {
+        PixelFormat::Png => {
+            Box::new(image::codecs::png::PngDecoder::new(cursor).map_err(|e| fail(e.to_string()))?)
+        }
+        _ => Box::new(
+            image::codecs::jpeg::JpegDecoder::new(cursor).map_err(|e| fail(e.to_string()))?,
+        ),
+    };
+    let (width, height) = decoder.dimensions();
+    check_size(format, width, height, limits)?;
+    let mut image_limits = image::Limits::default();
+    image_limits.max_image_width = Some(limits.max_width);
+    image_limits.max_image_height = Some(limits.max_height);
+    decoder
+        .set_limits(image_limits)
+        .map_err(|e| fail(e.to_string()))?;
+    let image = image::DynamicImage::from_decoder(decoder).map_err(|e| fail(e.to_string()))?;
+    let rgb = image.into_rgb8();
+    out.clear();
+    out.extend_from_slice(rgb.as_raw());
+    Ok((width, height))
+}
+
+/// Converts the region of interest of `frame` to packed RGB8 in `out`.
+///
+/// `region` of `None` means the whole frame. PNG and JPEG are decoded first. For chroma-subsampled formats
+/// the region is widened to whole chroma samples, converted, and cut back to the exact region, so any
+/// region gives the pixels a full-frame conversion would.
+pub fn to_rgb(
+    frame: &FrameRef<'_>,
+    region: Option<Region>,
+    yuv_spec: YuvSpec,
+    limits: &FrameLimits,
+    scratch: &mut DecodeScratch,
+    out: &mut RgbImage,
+) -> Result<(), FrameError> {
+    if frame.format.is_encoded() {
+        let DecodeScratch {
+            decoded,
+            aligned,
+            chroma,
+        } = scratch;
+        let (width, height) = decode_file(frame.format, frame.data, limits, decoded)?;
+        let region = checked_region(region, width, height)?;
+        let packed = Checked {
+            format: PixelFormat::Rgb8,
+            width,
+            height,
+            stride: width as usize * 3,
+            data: decoded,
+        };
+        return convert_region(&packed, region, yuv_spec, aligned, chroma, out);
+    }
+    let checked = frame.check(limits)?;
+    let region = checked_region(region, checked.width, checked.height)?;
+    convert_region(
+        &checked,
+        region,
+        yuv_spec,
+        &mut scratch.aligned,
+        &mut scratch.chroma,
+        out,
+    )
+}
+
+fn checked_region(region: Option<Region>, width: u32, height: u32) -> Result<Region, FrameError> {
+    let region = region.unwrap_or(Region::whole(width, height));
+    if !region.fits(width, height) {
+        return Err(FrameError::RegionOutside {
+            region,
+            width,
+            height,
+        });
+    }
+    Ok(region)
+}
+
+fn convert_region(
+    frame: &Checked<'_>,
+    region: Region,
+    yuv_spec: YuvSpec,
+    aligned: &mut RgbImage,
+    chroma: &mut Vec<u8>,
+    out: &mut RgbImage,
+) -> Result<(), FrameError> {
+    let (sx, sy) = frame.format.chroma_steps();
+    if sx == 1 && sy == 1 {
+        out.reset(region.width, region.height);
+        convert_packed(frame, region, out);
+        return Ok(());
+    }
+    // Widen to whole chroma samples.
+    let x0 = region.x - region.x % sx;
+    let y0 = region.y - region.y % sy;
+    let x1 = (region.x + region.width).next_multiple_of(sx);
+    let y1 = (region.y + region.height).next_multiple_of(sy);
+    let wide = Region {
+        x: x0,
+        y: y0,
+        width: x1 - x0,
+        height: y1 - y0,
+    };
+    if wide == region {
+        out.reset(region.width, region.height);
+        return convert_yuv(frame, region, yuv_spec, chroma, out);
+    }
+    aligned.reset(wide.width, wide.height);
+    convert_yuv(frame, wide, yuv_spec, chroma, aligned)?;
+    out.reset(region.width, region.height);
+    let (dx, dy) = ((region.x - x0) as usize, (region.y - y0) as usize);
+    let src_row = wide.width as usize * 3;
+    let dst_row = region.width as usize * 3;
+    for (row, dst) in out.data.chunks_exact_mut(dst_row).enumerate() {
+        let start = (row + dy) * src_row + dx * 3;
+        dst.copy_from_slice(&aligned.data[start..start + dst_row]);
+    }
+    Ok(())
+}
+
+/// RGB, BGR, RGBA, BGRA and grey to packed RGB.
+fn convert_packed(frame: &Checked<'_>, region: Region, out: &mut RgbImage) {
+    let bpp = match frame.format {
+        PixelFormat::Rgb8 | PixelFormat::Bgr8 => 3,
+        PixelFormat::Rgba8 | PixelFormat::Bgra8 => 4,
+        _ => 1,
+    };
+    let w = region.width as usize;
+    for (row, dst) in out.data.chunks_exact_mut(w * 3).enumerate() {
+        let start = (region.y as usize + row) * frame.stride + region.x as usize * bpp;
+        let src = &frame.data[start..start + w * bpp];
+        match frame.format {
+            PixelFormat::Rgb8 => dst.copy_from_slice(src),
+            PixelFormat::Bgr8 => {
+                for (d, s) in dst.chunks_exact_mut(3).zip(src.chunks_exact(3)) {
+                    d.copy_from_slice(&[s[2], s[1], s[0]]);
+                }
+            }
+            PixelFormat::Rgba8 => {
+                for (d, s) in dst.chunks_exact_mut(3).zip(src.chunks_exact(4)) {
+                    d.copy_from_slice(&s[..3]);
+                }
+            }
+            PixelFormat::Bgra8 => {
+                for (d, s) in dst.chunks_exact_mut(3).zip(src.chunks_exact(4)) {
+                    d.copy_from_slice(&[s[2], s[1], s[0]]);
+                }
+            }
+            _ => {
+                for (d, &s) in dst.chunks_exact_mut(3).zip(src) {
+                    d.copy_from_slice(&[s, s, s]);
+                }
+            }
+        }
+    }
+}
+
+/// Planar 8-bit 4:4:4 YUV (Y plane, U plane, V plane, each `width * height` bytes) to packed RGB8.
+pub fn yuv444_planar_to_rgb(
+    planes: &[u8],
+    width: u32,
+    height: u32,
+    spec: YuvSpec,
+) -> Result<Vec<u8>, FrameError> {
+    let format = PixelFormat::Rgb8;
+    check_size(
+        format,
+        width,
+        height,
+        &FrameLimits {
+            max_width: u32::MAX,
+            max_height: u32::MAX,
+        },
+    )?;
+    let n = width as u64 * height as u64;
+    if planes.len() as u64 != 3 * n {
+        return Err(FrameError::BadLength {
+            format,
+            got: planes.len() as u64,
+            expected: 3 * n,
+            width,
+            height,
+            stride: u64::from(width),
+        });
+    }
+    let n = n as usize;
+    let image = yuv::YuvPlanarImage {
+        y_plane: &planes[..n],
+        y_stride: width,
+        u_plane: &planes[n..2 * n],
+        u_stride: width,
+        v_plane: &planes[2 * n..],
+        v_stride: width,
+        width,
+        height,
+    };
+    let mut out = vec![0u8; 3 * n];
+    let (range, matrix) = yuv_params(spec);
+    yuv::yuv444_to_rgb(&image, &mut out, width * 3, range, matrix).map_err(|e| {
+        FrameError::ConversionFailed {
+            format,
+            reason: e.to_string(),
+        }
+    })?;
+    Ok(out)
+}
+
+fn yuv_params(spec: YuvSpec) -> (yuv::YuvRange, yuv::YuvStandardMatrix) {
+    let range = match spec.range {
+        YuvRange::Limited => yuv::YuvRange::Limited,
+        YuvRange::Full => yuv::YuvRange::Full,
+    };
+    let matrix = match spec.matrix {
+        YuvMatrix::Bt601 => yuv::YuvStandardMatrix::Bt601,
+        YuvMatrix::Bt709 => yuv::YuvStandardMatrix::Bt709,
+    };
+    (range, matrix)
+}
+
+/// NV12, I420 and YUYV over a region aligned to whole chroma samples, to packed RGB (SIMD, yuvutils-rs).
+fn convert_yuv(
+    frame: &Checked<'_>,
+    region: Region,
+    spec: YuvSpec,
+    chroma: &mut Vec<u8>,
+    out: &mut RgbImage,
+) -> Result<(), FrameError> {
+    let (range, matrix) = yuv_params(spec);
+    let (x, y) = (region.x as usize, region.y as usize);
+    let stride = frame.stride;
+    let h = frame.height as usize;
+    let rgb_stride = region.width * 3;
+    let fail = |e: yuv::YuvError| FrameError::ConversionFailed {
+        format: frame.format,
+        reason: e.to_string(),
+    };
+    match frame.format {
+        PixelFormat::Nv12 => {
+            let (y_plane, uv_plane) = frame.data.split_at(stride * h);
+            // yuvutils-rs wants the interleaved chroma tightly packed: copy the region's rows (a quarter of
+            // the luma's size).
+            let row = region.width as usize;
+            chroma.clear();
+            for r in 0..region.height as usize / 2 {
+                let start = (y / 2 + r) * stride + x;
+                chroma.extend_from_slice(&uv_plane[start..start + row]);
+            }
+            let image = yuv::YuvBiPlanarImage {
+                y_plane: &y_plane[y * stride + x..],
+                y_stride: stride as u32,
+                uv_plane: chroma,
+                uv_stride: row as u32,
+                width: region.width,
+                height: region.height,
+            };
+            yuv::yuv_nv12_to_rgb(
+                &image,
+                &mut out.data,
+                rgb_stride,
+                range,
+                matrix,
+                yuv::YuvConversionMode::Balanced,
+            )
+            .map_err(fail)
+        }
+        PixelFormat::I420 => {
+            let c = stride / 2;
+            let (y_plane, rest) = frame.data.split_at(stride * h);
+            let (u_plane, v_plane) = rest.split_at(c * (h / 2));
+            let image = yuv::YuvPlanarImage {
+                y_plane: &y_plane[y * stride + x..],
+                y_stride: stride as u32,
+                u_plane: &u_plane[(y / 2) * c + x / 2..],
+                u_stride: c as u32,
+                v_plane: &v_plane[(y / 2) * c + x / 2..],
+                v_stride: c as u32,
+                width: region.width,
+                height: region.height,
+            };
+            yuv::yuv420_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
+        }
+        _ => {
+            let image = yuv::YuvPackedImage {
+                yuy: &frame.data[y * stride + x * 2..],
+                yuy_stride: stride as u32,
+                width: region.width,
+                height: region.height,
+            };
+            yuv::yuyv422_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn convert(
+        frame: FrameRef<'_>,
+        region: Option<Region>,
+        spec: YuvSpec,
+    ) -> Result<RgbImage, FrameError> {
+        let mut out = RgbImage::default();
+        to_rgb(
+            &frame,
+            region,
+            spec,
+            &DEFAULT_FRAME_LIMITS,
+            &mut DecodeScratch::default(),
+            &mut out,
+        )?;
+        Ok(out)
+    }
+
+    fn nv12_flat(w: u32, h: u32, y: u8, u: u8, v: u8) -> Vec<u8> {
+        let mut data = vec![y; (w * h) as usize];
+        for _ in 0..(w * h / 4) {
+            data.extend_from_slice(&[u, v]);
+        }
+        data
+    }
+
+    #[test]
+    fn limited_range_white_and_black_follow_bt601_and_bt709() {
+        // ITU-R BT.601 / BT.709: in limited range, Y=235 with U=V=128 is nominal white, Y=16 is black.
+        for matrix in [YuvMatrix::Bt601, YuvMatrix::Bt709] {
+            let spec = YuvSpec {
+                matrix,
+                range: YuvRange::Limited,
+            };
+            let white = nv12_flat(4, 2, 235, 128, 128);
+            let frame = FrameRef {
+                format: PixelFormat::Nv12,
+                width: 4,
+                height: 2,
+                stride: 0,
+                data: &white,
+            };
+            let rgb = convert(frame, None, spec).expect("white converts");
+            assert!(
+                rgb.data.iter().all(|&v| v == 255),
+                "{matrix:?} white: {:?}",
+                &rgb.data[..3]
+            );
+            let black = nv12_flat(4, 2, 16, 128, 128);
+            let frame = FrameRef {
+                format: PixelFormat::Nv12,
+                width: 4,
+                height: 2,
+                stride: 0,
+                data: &black,
+            };
+            let rgb = convert(frame, None, spec).expect("black converts");
+            assert!(
+                rgb.data.iter().all(|&v| v == 0),
+                "{matrix:?} black: {:?}",
+                &rgb.data[..3]
+            );
+        }
+    }
+
+    #[test]
+    fn bt601_limited_red_matches_the_standard() {
+        // ITU-R BT.601, 8-bit limited range: R'=1, G'=B'=0 encodes as Y=81, Cb=90, Cr=240 (rounded).
+        let spec = YuvSpec {
+            matrix: YuvMatrix::Bt601,
+            range: YuvRange::Limited,
+        };
+        let red = nv12_flat(2, 2, 81, 90, 240);
+        let frame = FrameRef {
+            format: PixelFormat::Nv12,
+            width: 2,
+            height: 2,
+            stride: 0,
+            data: &red,
+        };
+        let rgb = convert(frame, None, spec).expect("red converts");
+        let px = &rgb.data[..3];
+        assert!(px[0] >= 253 && px[1] <= 2 && px[2] <= 2, "got {px:?}");
+    }
+
+    #[test]
+    fn bt709_limited_green_matches_the_standard() {
+        // ITU-R BT.709, 8-bit limited range: G'=1 encodes as Y=173, Cb=42, Cr=26 (rounded).
+        let spec = YuvSpec {
+            matrix: YuvMatrix::Bt709,
+            range: YuvRange::Limited,
+        };
+        let green = nv12_flat(2, 2, 173, 42, 26);
+        let frame = FrameRef {
+            format: PixelFormat::Nv12,
+            width: 2,
+            height: 2,
+            stride: 0,
+            data: &green,
+        };
+        let rgb = convert(frame, None, spec).expect("green converts");
+        let px = &rgb.data[..3];
+        assert!(px[0] <= 2 && px[1] >= 253 && px[2] <= 2, "got {px:?}");
+    }
+
+    #[test]
+    fn stride_and_region_select_the_right_pixels() {
+        // 3x2 BGRA frame with 2 bytes of padding per row; region is the middle column.
+        let data: Vec<u8> = vec![
+            1, 2, 3, 0, 4, 5, 6, 0, 7, 8, 9, 0, 99, 99, //
+            10, 11, 12, 0, 13, 14, 15, 0, 16, 17, 18, 0, 99, 99,
+        ];
+        let frame = FrameRef {
+            format: PixelFormat::Bgra8,
+            width: 3,
+            height: 2,
+            stride: 14,
+            data: &data,
+        };
+        let region = Region {
+            x: 1,
+            y: 0,
+            width: 1,
+            height: 2,
+        };
+        let rgb = convert(frame, Some(region), YuvSpec::default()).expect("converts");
+        assert_eq!(rgb.data, vec![6, 5, 4, 15, 14, 13]);
+    }
+
+    #[test]
+    fn odd_region_of_nv12_equals_the_cut_of_the_whole() {
+        let (w, h) = (8u32, 6u32);
+        let mut data: Vec<u8> = (0..(w * h) as usize)
+            .map(|i| (16 + i * 4 % 200) as u8)
+            .collect();
+        data.extend((0..(w * h / 2) as usize).map(|i| (60 + i * 7 % 120) as u8));
+        let frame = FrameRef {
+            format: PixelFormat::Nv12,
+            width: w,
+            height: h,
+            stride: 0,
+            data: &data,
+        };
+        let whole = convert(frame, None, YuvSpec::default()).expect("whole");
+        let region = Region {
+            x: 1,
+            y: 3,
+            width: 5,
+            height: 2,
+        };
+        let part = convert(frame, Some(region), YuvSpec::default()).expect("part");
+        for row in 0..2usize {
+            let src = ((3 + row) * w as usize + 1) * 3;
+            assert_eq!(
+                &part.data[row * 15..row * 15 + 15],
+                &whole.data[src..src + 15],
+                "row {row}"
+            );
+        }
+    }
+
+    #[test]
+    fn bad_geometry_is_refused_with_what_was_expected() {
+        let data = vec![0u8; 1920 * 1080 * 3 / 2 - 1];
+        let frame = FrameRef {
+            format: PixelFormat::Nv12,
+            width: 1920,
+            height: 1080,
+            stride: 0,
+            data: &data,
+        };
+        let err = convert(frame, None, YuvSpec::default()).expect_err("short buffer");
+        assert_eq!(err.kind(), "bad_length");
+        assert_eq!(
+            err.to_string(),
+            "nv12 buffer is 3110399 bytes, expected 3110400 for 1920x1080 with stride 1920"
+        );
+
+        let frame = FrameRef {
+            format: PixelFormat::I420,
+            width: 5,
+            height: 4,
+            stride: 0,
+            data: &[0; 30],
+        };
+        assert_eq!(
+            convert(frame, None, YuvSpec::default())
+                .expect_err("odd")
+                .kind(),
+            "odd_dimension"
+        );
+
+        let frame = FrameRef {
+            format: PixelFormat::Rgb8,
+            width: 4,
+            height: 1,
+            stride: 11,
+            data: &[0; 12],
+        };
+        assert_eq!(
+            convert(frame, None, YuvSpec::default())
+                .expect_err("stride")
+                .kind(),
+            "bad_stride"
+        );
+
+        let frame = FrameRef {
+            format: PixelFormat::Gray8,
+            width: 0,
+            height: 1,
+            stride: 0,
+            data: &[],
+        };
+        assert_eq!(
+            convert(frame, None, YuvSpec::default())
+                .expect_err("empty")
+                .kind(),
+            "empty_size"
+        );
+
+        let frame = FrameRef {
+            format: PixelFormat::Gray8,
+            width: 100_000,
+            height: 1,
+            stride: 0,
+            data: &[],
+        };
+        assert_eq!(
+            convert(frame, None, YuvSpec::default())
+                .expect_err("huge")
+                .kind(),
+            "too_large"
+        );
+
+        let frame = FrameRef {
+            format: PixelFormat::Gray8,
+            width: 2,
+            height: 2,
+            stride: 0,
+            data: &[0; 4],
+        };
+        let region = Region {
+            x: 1,
+            y: 1,
+            width: 2,
+            height: 1,
+        };
+        assert_eq!(
+            convert(frame, Some(region), YuvSpec::default())
+                .expect_err("roi")
+                .kind(),
+            "region_outside"
+        );
+
+        let frame = FrameRef {
+            format: PixelFormat::Png,
+            width: 0,
+            height: 0,
+            stride: 0,
+            data: b"\x89PNG\r\n\x1a\nbroken",
+        };
+        assert_eq!(
+            convert(frame, None, YuvSpec::default())
+                .expect_err("png")
+                .kind(),
+            "decode_failed"
+        );
+        let frame = FrameRef {
+            format: PixelFormat::Jpeg,
+            width: 0,
+            height: 0,
+            stride: 0,
+            data: &[0xFF, 0xD8, 0xFF],
+        };
+        assert_eq!(
+            convert(frame, None, YuvSpec::default())
+                .expect_err("jpeg")
+                .kind(),
+            "decode_failed"
+        );
+    }
+
+    #[test]
+    fn last_row_without_padding_is_accepted() {
+        let data = vec![7u8; 10 * 2 + 4];
+        let frame = FrameRef {
+            format: PixelFormat::Gray8,
+            width: 4,
+            height: 3,
+            stride: 10,
+            data: &data,
+        };
+        let rgb = convert(frame, None, YuvSpec::default()).expect("accepted");
+        assert_eq!(rgb.data.len(), 4 * 3 * 3);
+    }
+}

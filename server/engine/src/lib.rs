@@ -1,0 +1,33 @@
+//! The framewise engine: everything that turns one frame into class probabilities and a steady decision,
+//! with no network code. The server, the command-line client's offline paths and its in-process demo all
+//! use it.
+//!
+//! # Layout
+//! - [`frame`]: pixel formats, validation, decoding and colour conversion over a region of interest.
+//! - [`manifest`] and [`model`]: model packages, their checks against the graph, CPU inference (tract).
+//! - [`preprocess`]: the manifest's recipe from RGB to the model's input tensor.
+//! - [`quality`]: focus and exposure measures.
+//! - [`filter`]: temporal filters and the decision with hysteresis.
+//! - [`pipeline`]: one frame's path through all of the above, shared by every caller.
+//! - [`latency`]: per-stage HdrHistograms.
+//! - [`caution`]: the caution that travels with every output.
+
+pub mod caution;
+pub mod filter;
+pub mod frame;
+pub mod latency;
+pub mod manifest;
+pub mod model;
+pub mod pipeline;
+pub mod preprocess;
+pub mod quality;
+
+pub use caution::CAUTION;
+pub use filter::{Decision, DecisionSpec, FilterSpec, SettingsError};
+pub use frame::{
+    FrameError, FrameLimits, FrameRef, PixelFormat, Region, YuvMatrix, YuvRange, YuvSpec,
+};
+pub use manifest::Manifest;
+pub use model::{Model, ModelError, ModelIdentity, ModelPackage};
+pub use pipeline::{Analyser, FrameSpec, Outcome, StreamSettings};
+pub use quality::QualitySpec;

@@ -1,0 +1,312 @@
+//! The manifest's recipe from packed RGB to the model's input tensor: crop for the resize rule, resize with
+//! the stated interpolation, normalise, and lay out as NCHW or NHWC.
+//!
+//! Resizing uses fast_image_resize (SIMD): its interpolating bilinear filter follows OpenCV's INTER_LINEAR
+//! within one grey level, and its box convolution follows INTER_AREA (exactly for whole-number factors).
+
+use fast_image_resize as fir;
+
+use crate::frame::RgbImage;
+use crate::manifest::{ColourOrder, InputSpec, Interpolation, Layout, ResizeRule};
+
+/// Where the resized picture sits inside the model's input (the whole input except for letterbox).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Placement {
+    /// Left offset in the input.
+    pub x: u32,
+    /// Top offset in the input.
+    pub y: u32,
+    /// Width of the picture.
+    pub width: u32,
+    /// Height of the picture.
+    pub height: u32,
+}
+
+/// The source rectangle (within the region of interest) and where it lands in the model's input.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ResizePlan {
+    /// Source crop: x, y, width, height.
+    pub crop: (u32, u32, u32, u32),
+    /// Destination placement.
+    pub place: Placement,
+}
+
+/// Computes the crop and placement for a `width` x `height` region under the manifest's resize rule.
+///
+/// Centre crop: the largest centred rectangle with the input's aspect ratio, its size rounded to whole
+/// pixels and its offset rounded down. Letterbox: scale by min(W/w, H/h), round the scaled size to whole
+/// pixels (at least 1), centre it with the offset rounded down.
+pub fn plan_resize(spec: &InputSpec, width: u32, height: u32) -> ResizePlan {
+    let (tw, th) = (u64::from(spec.width), u64::from(spec.height));
+    let (w, h) = (u64::from(width), u64::from(height));
+    let whole = Placement {
+        x: 0,
+        y: 0,
+        width: spec.width,
+        height: spec.height,
+    };
+    match spec.resize {
+        ResizeRule::Stretch => ResizePlan {
+            crop: (0, 0, width, height),
+            place: whole,
+        },
+        ResizeRule::CentreCrop => {
+            let (cw, ch) = if w * th > h * tw {
+                (((h * tw + th / 2) / th).clamp(1, w), h)
+            } else {
+                (w, ((w * th + tw / 2) / tw).clamp(1, h))
+            };
+            let crop = (
+                ((w - cw) / 2) as u32,
+                ((h - ch) / 2) as u32,
+                cw as u32,
+                ch as u32,
+            );
+            ResizePlan { crop, place: whole }
+        }
+        ResizeRule::Letterbox => {
+            let (pw, ph) = if w * th > h * tw {
+                (tw, ((h * tw + w / 2) / w).clamp(1, th))
+            } else {
+                (((w * th + h / 2) / h).clamp(1, tw), th)
+            };
+            let place = Placement {
+                x: ((tw - pw) / 2) as u32,
+                y: ((th - ph) / 2) as u32,
+                width: pw as u32,
+                height: ph as u32,
+            };
+            ResizePlan {
+                crop: (0, 0, width, height),
+                place,
+            }
+        }
+    }
+}
+
+/// Per-session resizing state and buffers.
+#[derive(Default)]
+pub struct Preprocessor {
+    resizer: fir::Resizer,
+    resized: Vec<u8>,
+    luma: Vec<u8>,
+}
+
+impl std::fmt::Debug for Preprocessor {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Preprocessor").finish_non_exhaustive()
+    }
+}
+
+/// The prepared input of one frame.
+#[derive(Debug, Clone, Copy)]
+pub struct Prepared<'a> {
+    /// The resized RGB picture (placement size), before normalisation.
+    pub picture: &'a [u8],
+    /// Its luma (OpenCV's fixed-point BT.601 weights), for the quality measures.
+    pub luma: &'a [u8],
+    /// Width and height of `picture`.
+    pub size: (u32, u32),
+}
+
+impl Preprocessor {
+    /// A preprocessor with empty buffers.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Resizes `rgb` as the manifest says and writes the normalised tensor into `tensor` (resized to the
+    /// model's input length). Returns the resized picture and its luma.
+    pub fn prepare<'a>(
+        &'a mut self,
+        spec: &InputSpec,
+        rgb: &RgbImage,
+        tensor: &mut Vec<f32>,
+    ) -> Prepared<'a> {
+        let plan = plan_resize(spec, rgb.width, rgb.height);
+        self.resize(spec, rgb, &plan);
+        normalise(spec, &plan.place, &self.resized, tensor);
+        luma_of(&self.resized, &mut self.luma);
+        Prepared {
+            picture: &self.resized,
+            luma: &self.luma,
+            size: (plan.place.width, plan.place.height),
+        }
+    }
+
+    fn resize(&mut self, spec: &InputSpec, rgb: &RgbImage, plan: &ResizePlan) {
+        let (pw, ph) = (plan.place.width, plan.place.height);
+        self.resized.clear();
+        self.resized.resize(pw as usize * ph as usize * 3, 0);
+        let (cx, cy, cw, ch) = plan.crop;
+        if (cw, ch) == (pw, ph) {
+            // Same size: copy the crop.
+            let row = cw as usize * 3;
+            for (r, dst) in self.resized.chunks_exact_mut(row).enumerate() {
+                let start = ((cy as usize + r) * rgb.width as usize + cx as usize) * 3;
+                dst.copy_from_slice(&rgb.data[start..start + row]);
+            }
+            return;
+        }
+        let algorithm = match spec.interpolation {
+            Interpolation::Bilinear => fir::ResizeAlg::Interpolation(fir::FilterType::Bilinear),
+            Interpolation::Area => fir::ResizeAlg::Convolution(fir::FilterType::Box),
+        };
+        let options = fir::ResizeOptions::new().resize_alg(algorithm).crop(
+            f64::from(cx),
+            f64::from(cy),
+            f64::from(cw),
+            f64::from(ch),
+        );
+        let src =
+            fir::images::ImageRef::new(rgb.width, rgb.height, &rgb.data, fir::PixelType::U8x3);
+        let dst =
+            fir::images::Image::from_slice_u8(pw, ph, &mut self.resized, fir::PixelType::U8x3);
+        match (src, dst) {
+            (Ok(src), Ok(mut dst)) => {
+                if self.resizer.resize(&src, &mut dst, &options).is_err() {
+                    self.resized.fill(0);
+                }
+            }
+            _ => self.resized.fill(0),
+        }
+    }
+}
+
+/// Writes `(v * scale - mean[c]) / std[c]` into the tensor in the manifest's layout and channel order,
+/// with the letterbox fill around the placed picture.
+fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut Vec<f32>) {
+    let (tw, th) = (spec.width as usize, spec.height as usize);
+    tensor.clear();
+    tensor.resize(3 * tw * th, 0.0);
+    // Per channel (in the model's order): the source channel in RGB, and a lookup table for 0..=255.
+    let source = match spec.colour_order {
+        ColourOrder::Rgb => [0usize, 1, 2],
+        ColourOrder::Bgr => [2usize, 1, 0],
+    };
+    let mut tables = [[0f32; 256]; 3];
+    for (c, table) in tables.iter_mut().enumerate() {
+        for (v, slot) in table.iter_mut().enumerate() {
+            *slot = ((v as f64 * spec.scale - spec.mean[c]) / spec.std[c]) as f32;
+        }
+    }
+    let fill = spec.letterbox_fill as usize;
+    let (px, py, pw, ph) = (
+        place.x as usize,
+        place.y as usize,
+        place.width as usize,
+        place.height as usize,
+    );
+    let value_at = |c: usize, x: usize, y: usize| -> f32 {
+        if x >= px && x < px + pw && y >= py && y < py + ph {
+            let i = ((y - py) * pw + (x - px)) * 3 + source[c];
+            tables[c][picture[i] as usize]
+        } else {
+            tables[c][fill]
+        }
+    };
+    match spec.layout {
+        Layout::Nchw => {
+            for c in 0..3 {
+                let plane = &mut tensor[c * tw * th..(c + 1) * tw * th];
+                for y in 0..th {
+                    for x in 0..tw {
+                        plane[y * tw + x] = value_at(c, x, y);
+                    }
+                }
+            }
+        }
+        Layout::Nhwc => {
+            for y in 0..th {
+                for x in 0..tw {
+                    for c in 0..3 {
+                        tensor[(y * tw + x) * 3 + c] = value_at(c, x, y);
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Luma of packed RGB with OpenCV's fixed-point BT.601 weights (as `cv2.cvtColor(..., COLOR_RGB2GRAY)`):
+/// `(4899 R + 9617 G + 1868 B + 8192) >> 14`.
+pub fn luma_of(rgb: &[u8], out: &mut Vec<u8>) {
+    out.clear();
+    out.extend(rgb.chunks_exact(3).map(|p| {
+        ((4899 * u32::from(p[0]) + 9617 * u32::from(p[1]) + 1868 * u32::from(p[2]) + 8192) >> 14)
+            as u8
+    }));
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn spec(rule: ResizeRule, w: u32, h: u32) -> InputSpec {
+        InputSpec {
+            tensor: "x".into(),
+            layout: Layout::Nchw,
+            width: w,
+            height: h,
+            colour_order: ColourOrder::Rgb,
+            scale: 1.0 / 255.0,
+            mean: [0.0; 3],
+            std: [1.0; 3],
+            resize: rule,
+            interpolation: Interpolation::Bilinear,
+            letterbox_fill: 0,
+        }
+    }
+
+    #[test]
+    fn centre_crop_takes_the_largest_centred_square() {
+        let plan = plan_resize(&spec(ResizeRule::CentreCrop, 96, 96), 640, 480);
+        assert_eq!(plan.crop, (80, 0, 480, 480));
+        let plan = plan_resize(&spec(ResizeRule::CentreCrop, 96, 96), 480, 641);
+        assert_eq!(plan.crop, (0, 80, 480, 480));
+    }
+
+    #[test]
+    fn letterbox_fits_and_centres() {
+        let plan = plan_resize(&spec(ResizeRule::Letterbox, 224, 224), 1920, 1080);
+        assert_eq!(
+            plan.place,
+            Placement {
+                x: 0,
+                y: 49,
+                width: 224,
+                height: 126
+            }
+        );
+        let plan = plan_resize(&spec(ResizeRule::Letterbox, 224, 224), 1, 1000);
+        assert_eq!(plan.place.width, 1);
+    }
+
+    #[test]
+    fn normalise_writes_layout_order_and_fill() {
+        let mut s = spec(ResizeRule::Letterbox, 2, 1);
+        s.letterbox_fill = 255;
+        s.colour_order = ColourOrder::Bgr;
+        let place = Placement {
+            x: 1,
+            y: 0,
+            width: 1,
+            height: 1,
+        };
+        let mut t = Vec::new();
+        normalise(&s, &place, &[0, 51, 102], &mut t);
+        // NCHW with B first: [B(fill), B(pic)], [G(fill), G(pic)], [R(fill), R(pic)]
+        assert_eq!(t, vec![1.0, 0.4, 1.0, 0.2, 1.0, 0.0]);
+        s.layout = Layout::Nhwc;
+        normalise(&s, &place, &[0, 51, 102], &mut t);
+        assert_eq!(t, vec![1.0, 1.0, 1.0, 0.4, 0.2, 0.0]);
+    }
+
+    #[test]
+    fn luma_uses_the_bt601_weights() {
+        let mut out = Vec::new();
+        luma_of(&[255, 255, 255, 255, 0, 0, 0, 255, 0, 0, 0, 255], &mut out);
+        // 0.299 R + 0.587 G + 0.114 B (ITU-R BT.601 luma weights)
+        assert_eq!(out, vec![255, 76, 150, 29]);
+    }
+}

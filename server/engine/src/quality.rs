@@ -1,0 +1,176 @@
+//! Frame quality: a focus measure (variance of the Laplacian) and an exposure measure (share of clipped
+//! dark and bright pixels), on the luma of the frame at the model's input size.
+
+use crate::filter::SettingsError;
+
+/// Luma at or below this is clipped dark.
+pub const DARK_LEVEL: u8 = 5;
+/// Luma at or above this is clipped bright.
+pub const BRIGHT_LEVEL: u8 = 250;
+
+/// Thresholds that make a frame unusable.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct QualitySpec {
+    /// Minimum focus (variance of the Laplacian); 0 turns the check off.
+    pub min_focus: f64,
+    /// Maximum share of clipped pixels (dark plus bright); 1 turns the check off.
+    pub max_clipped: f64,
+}
+
+impl Default for QualitySpec {
+    /// Checks off: every frame is usable unless a session asks otherwise.
+    fn default() -> Self {
+        Self {
+            min_focus: 0.0,
+            max_clipped: 1.0,
+        }
+    }
+}
+
+impl QualitySpec {
+    /// Checks the thresholds.
+    pub fn validate(&self) -> Result<(), SettingsError> {
+        if !(self.min_focus.is_finite() && self.min_focus >= 0.0) {
+            let problem = format!("is {}; it must be 0 or more", self.min_focus);
+            return Err(SettingsError {
+                field: "quality.min_focus",
+                problem,
+            });
+        }
+        if !(0.0..=1.0).contains(&self.max_clipped) {
+            let problem = format!("is {}; it must be within 0..=1", self.max_clipped);
+            return Err(SettingsError {
+                field: "quality.max_clipped",
+                problem,
+            });
+        }
+        Ok(())
+    }
+
+    /// Applies the thresholds to measures.
+    pub fn judge(&self, m: &QualityMeasures) -> QualityVerdict {
+        let blurred = self.min_focus > 0.0 && m.focus < self.min_focus;
+        let badly_exposed =
+            self.max_clipped < 1.0 && m.dark_share + m.bright_share > self.max_clipped;
+        QualityVerdict {
+            blurred,
+            badly_exposed,
+            usable: !blurred && !badly_exposed,
+        }
+    }
+}
+
+/// The measures of one frame.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct QualityMeasures {
+    /// Variance of the Laplacian of the luma.
+    pub focus: f64,
+    /// Share of luma pixels at or below [`DARK_LEVEL`].
+    pub dark_share: f64,
+    /// Share of luma pixels at or above [`BRIGHT_LEVEL`].
+    pub bright_share: f64,
+}
+
+/// What the thresholds made of the measures.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct QualityVerdict {
+    /// Focus below the minimum.
+    pub blurred: bool,
+    /// Clipped share above the maximum.
+    pub badly_exposed: bool,
+    /// Neither: the frame may update the temporal filter.
+    pub usable: bool,
+}
+
+/// Measures focus and exposure of a `width` x `height` luma image.
+pub fn measure(luma: &[u8], width: usize, height: usize) -> QualityMeasures {
+    let n = luma.len().min(width * height);
+    if n == 0 {
+        return QualityMeasures::default();
+    }
+    let dark = luma[..n].iter().filter(|&&v| v <= DARK_LEVEL).count();
+    let bright = luma[..n].iter().filter(|&&v| v >= BRIGHT_LEVEL).count();
+    QualityMeasures {
+        focus: laplacian_variance(&luma[..n], width, height),
+        dark_share: dark as f64 / n as f64,
+        bright_share: bright as f64 / n as f64,
+    }
+}
+
+/// Variance of the Laplacian (Pech-Pacheco et al., "Diatom autofocusing in brightfield microscopy", 2000):
+/// the 4-neighbour kernel [0 1 0; 1 -4 1; 0 1 0] with reflected borders (as OpenCV's `Laplacian` with
+/// ksize 1 and its default BORDER_REFLECT_101), then the population variance of the response.
+pub fn laplacian_variance(luma: &[u8], width: usize, height: usize) -> f64 {
+    if width == 0 || height == 0 || luma.len() < width * height {
+        return 0.0;
+    }
+    // Reflect-101: index -1 maps to 1, index n maps to n - 2 (a side of 1 maps to itself).
+    let reflect = |i: isize, n: usize| -> usize {
+        if n == 1 {
+            0
+        } else if i < 0 {
+            (-i) as usize
+        } else if i as usize >= n {
+            2 * (n - 1) - i as usize
+        } else {
+            i as usize
+        }
+    };
+    let at = |x: isize, y: isize| f64::from(luma[reflect(y, height) * width + reflect(x, width)]);
+    let mut sum = 0.0;
+    let mut sum_sq = 0.0;
+    for y in 0..height as isize {
+        for x in 0..width as isize {
+            let v = at(x - 1, y) + at(x + 1, y) + at(x, y - 1) + at(x, y + 1) - 4.0 * at(x, y);
+            sum += v;
+            sum_sq += v * v;
+        }
+    }
+    let n = (width * height) as f64;
+    let mean = sum / n;
+    (sum_sq / n - mean * mean).max(0.0)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn flat_image_has_no_focus_and_a_checkerboard_has_a_lot() {
+        assert_eq!(laplacian_variance(&[100; 16], 4, 4), 0.0);
+        // A one-pixel checkerboard of 0/255: every response is +-4*255 (worked by hand), mean 0.
+        let board: Vec<u8> = (0..16)
+            .map(|i| if (i % 4 + i / 4) % 2 == 0 { 0 } else { 255 })
+            .collect();
+        assert_eq!(laplacian_variance(&board, 4, 4), (4.0f64 * 255.0).powi(2));
+    }
+
+    #[test]
+    fn exposure_counts_clipped_pixels_and_thresholds_judge() {
+        let m = measure(&[0, 5, 6, 128, 249, 250, 255, 100], 8, 1);
+        assert_eq!(m.dark_share, 2.0 / 8.0);
+        assert_eq!(m.bright_share, 2.0 / 8.0);
+        let spec = QualitySpec {
+            min_focus: 0.0,
+            max_clipped: 0.4,
+        };
+        assert!(spec.judge(&m).badly_exposed);
+        assert!(QualitySpec::default().judge(&m).usable);
+        assert!(
+            QualitySpec {
+                min_focus: -1.0,
+                max_clipped: 1.0
+            }
+            .validate()
+            .is_err()
+        );
+        assert!(
+            QualitySpec {
+                min_focus: 0.0,
+                max_clipped: 1.5
+            }
+            .validate()
+            .is_err()
+        );
+    }
+}
