@@ -608,6 +608,142 @@ fn convert_packed(frame: &Checked<'_>, region: Region, out: &mut RgbImage) {
     }
 }
 
+/// Encodes packed RGB8 into another format with tightly packed rows: for synthetic frames in tests, benchmarks
+/// and demos (not on the analysis path). YUV uses BT.601 limited range with 2x2 (4:2:0) or 2x1 (4:2:2) chroma
+/// averaging; width and height must be even for YUV. PNG and JPEG (quality 90) use the `image` encoders.
+pub fn encode_from_rgb(
+    rgb: &[u8],
+    width: u32,
+    height: u32,
+    format: PixelFormat,
+) -> Result<Vec<u8>, FrameError> {
+    let (w, h) = (width as usize, height as usize);
+    if rgb.len() != w * h * 3 || w == 0 || h == 0 {
+        let expected = (w * h * 3) as u64;
+        return Err(FrameError::BadLength {
+            format: PixelFormat::Rgb8,
+            got: rgb.len() as u64,
+            expected,
+            width,
+            height,
+            stride: w as u64 * 3,
+        });
+    }
+    let (sx, sy) = format.chroma_steps();
+    if (sx == 2 && w % 2 != 0) || (sy == 2 && h % 2 != 0) {
+        return Err(FrameError::OddDimension {
+            format,
+            width,
+            height,
+            which: if w % 2 != 0 { "width" } else { "height" },
+        });
+    }
+    let px = |x: usize, y: usize| -> [f64; 3] {
+        let i = (y * w + x) * 3;
+        [
+            f64::from(rgb[i]),
+            f64::from(rgb[i + 1]),
+            f64::from(rgb[i + 2]),
+        ]
+    };
+    // ITU-R BT.601, 8-bit limited range.
+    let luma = |p: [f64; 3]| {
+        (16.0 + (65.481 * p[0] + 128.553 * p[1] + 24.966 * p[2]) / 255.0)
+            .round()
+            .clamp(0.0, 255.0) as u8
+    };
+    let cb = |p: [f64; 3]| {
+        (128.0 + (-37.797 * p[0] - 74.203 * p[1] + 112.0 * p[2]) / 255.0)
+            .round()
+            .clamp(0.0, 255.0) as u8
+    };
+    let cr = |p: [f64; 3]| {
+        (128.0 + (112.0 * p[0] - 93.786 * p[1] - 18.214 * p[2]) / 255.0)
+            .round()
+            .clamp(0.0, 255.0) as u8
+    };
+    let mean = |pts: &[[f64; 3]]| {
+        let n = pts.len() as f64;
+        [0, 1, 2].map(|c| pts.iter().map(|p| p[c]).sum::<f64>() / n)
+    };
+    let fail = |reason: String| FrameError::DecodeFailed { format, reason };
+    Ok(match format {
+        PixelFormat::Rgb8 => rgb.to_vec(),
+        PixelFormat::Bgr8 => rgb
+            .chunks_exact(3)
+            .flat_map(|p| [p[2], p[1], p[0]])
+            .collect(),
+        PixelFormat::Rgba8 => rgb
+            .chunks_exact(3)
+            .flat_map(|p| [p[0], p[1], p[2], 255])
+            .collect(),
+        PixelFormat::Bgra8 => rgb
+            .chunks_exact(3)
+            .flat_map(|p| [p[2], p[1], p[0], 255])
+            .collect(),
+        PixelFormat::Gray8 => {
+            let mut out = Vec::new();
+            crate::preprocess::luma_of(rgb, &mut out);
+            out
+        }
+        PixelFormat::Nv12 | PixelFormat::I420 => {
+            let mut y_plane: Vec<u8> = (0..w * h).map(|i| luma(px(i % w, i / w))).collect();
+            let (mut u, mut v) = (Vec::with_capacity(w * h / 4), Vec::with_capacity(w * h / 4));
+            for cy in 0..h / 2 {
+                for cx in 0..w / 2 {
+                    let m = mean(&[
+                        px(2 * cx, 2 * cy),
+                        px(2 * cx + 1, 2 * cy),
+                        px(2 * cx, 2 * cy + 1),
+                        px(2 * cx + 1, 2 * cy + 1),
+                    ]);
+                    u.push(cb(m));
+                    v.push(cr(m));
+                }
+            }
+            if format == PixelFormat::Nv12 {
+                y_plane.extend(u.iter().zip(&v).flat_map(|(a, b)| [*a, *b]));
+            } else {
+                y_plane.extend(u);
+                y_plane.extend(v);
+            }
+            y_plane
+        }
+        PixelFormat::Yuyv => {
+            let mut out = Vec::with_capacity(w * h * 2);
+            for y in 0..h {
+                for cx in 0..w / 2 {
+                    let (a, b) = (px(2 * cx, y), px(2 * cx + 1, y));
+                    let m = mean(&[a, b]);
+                    out.extend_from_slice(&[luma(a), cb(m), luma(b), cr(m)]);
+                }
+            }
+            out
+        }
+        PixelFormat::Png | PixelFormat::Jpeg => {
+            use image::ImageEncoder;
+            let mut out = Vec::new();
+            let result = if format == PixelFormat::Png {
+                image::codecs::png::PngEncoder::new(&mut out).write_image(
+                    rgb,
+                    width,
+                    height,
+                    image::ExtendedColorType::Rgb8,
+                )
+            } else {
+                image::codecs::jpeg::JpegEncoder::new_with_quality(&mut out, 90).write_image(
+                    rgb,
+                    width,
+                    height,
+                    image::ExtendedColorType::Rgb8,
+                )
+            };
+            result.map_err(|e| fail(e.to_string()))?;
+            out
+        }
+    })
+}
+
 /// Planar 8-bit 4:4:4 YUV (Y plane, U plane, V plane, each `width * height` bytes) to packed RGB8.
 pub fn yuv444_planar_to_rgb(
     planes: &[u8],
@@ -1027,6 +1163,42 @@ mod tests {
                 .kind(),
             "decode_failed"
         );
+    }
+
+    #[test]
+    fn encoded_frames_convert_back_close_to_the_original() {
+        let (w, h) = (6u32, 4u32);
+        let rgb: Vec<u8> = (0..w * h * 3).map(|i| (i * 37 % 200 + 20) as u8).collect();
+        let flat: Vec<u8> = (0..w * h).flat_map(|_| [120u8, 60, 200]).collect();
+        for format in PixelFormat::ALL {
+            let source = if format.is_yuv() || format == PixelFormat::Jpeg {
+                &flat
+            } else {
+                &rgb
+            };
+            let data = encode_from_rgb(source, w, h, format).expect("encodes");
+            let frame = FrameRef {
+                format,
+                width: w,
+                height: h,
+                stride: 0,
+                data: &data,
+            };
+            let back = convert(frame, None, YuvSpec::default()).expect("converts back");
+            let limit = match format {
+                PixelFormat::Gray8 => 255,
+                f if f.is_yuv() || f == PixelFormat::Jpeg => 3,
+                _ => 0,
+            };
+            let max = back
+                .data
+                .iter()
+                .zip(source)
+                .map(|(a, b)| a.abs_diff(*b))
+                .max()
+                .unwrap_or(0);
+            assert!(max <= limit, "{format}: round trip differs by {max}");
+        }
     }
 
     #[test]

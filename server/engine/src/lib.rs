@@ -10,6 +10,7 @@
 //! - [`filter`]: temporal filters and the decision with hysteresis.
 //! - [`pipeline`]: one frame's path through all of the above, shared by every caller.
 //! - [`latency`]: per-stage HdrHistograms.
+//! - [`scoring`]: metrics of outputs against labels (accuracy, sensitivity, ROC AUC, calibration, timing).
 //! - [`caution`]: the caution that travels with every output.
 
 pub mod caution;
@@ -21,6 +22,7 @@ pub mod model;
 pub mod pipeline;
 pub mod preprocess;
 pub mod quality;
+pub mod scoring;
 
 pub use caution::CAUTION;
 pub use filter::{Decision, DecisionSpec, FilterSpec, SettingsError};
