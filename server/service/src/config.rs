@@ -1,0 +1,201 @@
+//! Server settings: a TOML file (opt-in) overridden by flags. Every limit is a named, documented field.
+
+use std::net::SocketAddr;
+use std::path::PathBuf;
+use std::time::Duration;
+
+use serde::Deserialize;
+
+/// Default gRPC address: loopback only.
+pub const DEFAULT_LISTEN: &str = "127.0.0.1:50051";
+/// Default largest gRPC message: a 4K UHD RGBA frame (3840 x 2160 x 4 = 33,177,600 bytes) plus headroom.
+pub const DEFAULT_MAX_MESSAGE_BYTES: usize = 36 * 1024 * 1024;
+/// Default largest number of open sessions.
+pub const DEFAULT_MAX_SESSIONS: usize = 64;
+/// Default idle timeout: a session that sends nothing for this long is ended.
+pub const DEFAULT_IDLE_TIMEOUT_S: f64 = 30.0;
+/// Default drain deadline after SIGTERM.
+pub const DEFAULT_DRAIN_S: f64 = 10.0;
+/// Answers buffered per session before the session stops reading frames (back-pressure on the client).
+pub const ANSWER_BUFFER: usize = 16;
+
+/// The server's settings.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct ServerConfig {
+    /// gRPC address.
+    pub listen: SocketAddr,
+    /// Prometheus text endpoint address; none to turn it off.
+    pub metrics_listen: Option<SocketAddr>,
+    /// Model package directories to serve besides the embedded demo model.
+    pub models: Vec<ModelEntry>,
+    /// The default model's name; empty for the first of `models`, or the demo model.
+    pub default_model: String,
+    /// Serve the embedded demo model.
+    pub demo_model: bool,
+    /// Refuse to start when a model fails to load (otherwise it is logged and skipped).
+    pub strict_models: bool,
+    /// Inference worker threads; 0 for one per core.
+    pub workers: usize,
+    /// Largest gRPC message in bytes.
+    pub max_message_bytes: usize,
+    /// Largest frame width in pixels.
+    pub max_frame_width: u32,
+    /// Largest frame height in pixels.
+    pub max_frame_height: u32,
+    /// Largest number of open sessions; more get RESOURCE_EXHAUSTED.
+    pub max_sessions: usize,
+    /// Seconds without a message before a session is ended.
+    pub idle_timeout_s: f64,
+    /// Seconds open sessions get to finish after SIGTERM.
+    pub drain_s: f64,
+    /// TLS settings; none for plaintext.
+    pub tls: Option<TlsConfig>,
+    /// Bearer token required at session start and on unary calls; none for no token.
+    pub token: Option<String>,
+    /// Allow plaintext on a non-loopback address (off: the server refuses).
+    pub allow_insecure_remote: bool,
+}
+
+/// One model package to load.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModelEntry {
+    /// Package directory (holding manifest.toml) or manifest path.
+    pub path: PathBuf,
+    /// SHA-256 the `.onnx` file must have.
+    #[serde(default)]
+    pub sha256: Option<String>,
+}
+
+/// TLS files (PEM).
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TlsConfig {
+    /// Server certificate chain.
+    pub cert: PathBuf,
+    /// Server private key.
+    pub key: PathBuf,
+    /// Authority that client certificates must be signed by (mutual TLS); none for server-only TLS.
+    #[serde(default)]
+    pub client_ca: Option<PathBuf>,
+}
+
+impl Default for ServerConfig {
+    fn default() -> Self {
+        Self {
+            listen: DEFAULT_LISTEN
+                .parse()
+                .unwrap_or_else(|_| SocketAddr::from(([127, 0, 0, 1], 50051))),
+            metrics_listen: None,
+            models: Vec::new(),
+            default_model: String::new(),
+            demo_model: true,
+            strict_models: false,
+            workers: 0,
+            max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES,
+            max_frame_width: framewise_engine::frame::DEFAULT_FRAME_LIMITS.max_width,
+            max_frame_height: framewise_engine::frame::DEFAULT_FRAME_LIMITS.max_height,
+            max_sessions: DEFAULT_MAX_SESSIONS,
+            idle_timeout_s: DEFAULT_IDLE_TIMEOUT_S,
+            drain_s: DEFAULT_DRAIN_S,
+            tls: None,
+            token: None,
+            allow_insecure_remote: false,
+        }
+    }
+}
+
+/// A setting that cannot be used.
+#[derive(Debug, thiserror::Error)]
+#[error("server setting `{field}`: {problem}")]
+pub struct ConfigError {
+    /// The setting.
+    pub field: &'static str,
+    /// What is wrong.
+    pub problem: String,
+}
+
+impl ServerConfig {
+    /// Parses a TOML config file's text.
+    pub fn from_toml(text: &str) -> Result<Self, ConfigError> {
+        toml::from_str(text).map_err(|e| ConfigError {
+            field: "config",
+            problem: e.to_string(),
+        })
+    }
+
+    /// Checks the settings.
+    pub fn validate(&self) -> Result<(), ConfigError> {
+        let bad = |field, problem: String| Err(ConfigError { field, problem });
+        if !self.listen.ip().is_loopback() && self.tls.is_none() && !self.allow_insecure_remote {
+            return bad(
+                "listen",
+                format!(
+                    "{} is not a loopback address and TLS is off; configure TLS, or set allow_insecure_remote = true \
+                     (--allow-insecure-remote) if the network is otherwise protected",
+                    self.listen
+                ),
+            );
+        }
+        if self.max_sessions == 0 {
+            return bad("max_sessions", "must be at least 1".into());
+        }
+        if self.max_message_bytes < 1024 {
+            return bad(
+                "max_message_bytes",
+                format!("is {}; it must be at least 1024", self.max_message_bytes),
+            );
+        }
+        if self.max_frame_width == 0 || self.max_frame_height == 0 {
+            return bad(
+                "max_frame_width",
+                "frame limits must be at least 1 pixel".into(),
+            );
+        }
+        for (field, v) in [
+            ("idle_timeout_s", self.idle_timeout_s),
+            ("drain_s", self.drain_s),
+        ] {
+            if !(v.is_finite() && v > 0.0) {
+                return bad(
+                    field,
+                    format!("is {v}; it must be a positive number of seconds"),
+                );
+            }
+        }
+        if let Some(token) = &self.token {
+            if token.len() < 16 {
+                return bad("token", "must be at least 16 characters".into());
+            }
+        }
+        if !self.demo_model && self.models.is_empty() {
+            return bad(
+                "models",
+                "no model to serve: give a model package or keep the demo model".into(),
+            );
+        }
+        Ok(())
+    }
+
+    /// Worker threads to run.
+    pub fn worker_count(&self) -> usize {
+        if self.workers > 0 {
+            self.workers
+        } else {
+            std::thread::available_parallelism()
+                .map(|n| n.get())
+                .unwrap_or(1)
+        }
+    }
+
+    /// Idle timeout.
+    pub fn idle_timeout(&self) -> Duration {
+        Duration::from_secs_f64(self.idle_timeout_s)
+    }
+
+    /// Drain deadline.
+    pub fn drain(&self) -> Duration {
+        Duration::from_secs_f64(self.drain_s)
+    }
+}

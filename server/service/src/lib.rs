@@ -1,0 +1,215 @@
+//! The framewise service: the engine behind a gRPC server that device integrators stream live frames into.
+//!
+//! # Layout
+//! - [`config`]: settings (TOML file and flags) and their limits.
+//! - [`registry`]: the models served, loaded and warmed up before the server reports SERVING.
+//! - [`pool`]: CPU worker threads for decoding, preprocessing and inference, off the async runtime.
+//! - [`service`] and [`session`]: admission, frame policies and answers; [`convert`] maps the wire types.
+//! - [`stats`] and [`metrics`]: counters, latency histograms and the Prometheus text endpoint.
+//!
+//! [`start`] runs the whole server on a listener, so tests start the real thing on `127.0.0.1:0`.
+
+pub mod config;
+pub mod convert;
+pub mod metrics;
+pub mod pool;
+pub mod registry;
+pub mod service;
+pub mod session;
+pub mod stats;
+
+use std::net::SocketAddr;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Duration;
+
+use anyhow::{Context, Result};
+use framewise_proto::v1::frame_analysis_server::FrameAnalysisServer;
+use tokio::net::TcpListener;
+use tokio::task::JoinHandle;
+use tokio_stream::wrappers::TcpListenerStream;
+use tokio_util::sync::CancellationToken;
+use tonic::transport::{Certificate, Identity, ServerTlsConfig};
+
+pub use config::ServerConfig;
+pub use registry::ModelRegistry;
+
+use crate::service::Service;
+use crate::stats::ServerStats;
+
+/// Time the transport gets to close connections after the sessions ended.
+pub const TRANSPORT_CLOSE_GRACE: Duration = Duration::from_secs(2);
+
+/// A running server.
+pub struct RunningServer {
+    /// The gRPC address it listens on.
+    pub addr: SocketAddr,
+    /// The metrics address, when enabled.
+    pub metrics_addr: Option<SocketAddr>,
+    /// Server statistics.
+    pub stats: Arc<ServerStats>,
+    shutdown: CancellationToken,
+    task: JoinHandle<Result<()>>,
+}
+
+impl RunningServer {
+    /// Asks the server to stop: NOT_SERVING, no new sessions, open ones get the drain deadline.
+    pub fn begin_shutdown(&self) {
+        self.shutdown.cancel();
+    }
+
+    /// A token that stops the server when cancelled.
+    pub fn shutdown_token(&self) -> CancellationToken {
+        self.shutdown.clone()
+    }
+
+    /// Waits until the server has stopped.
+    pub async fn wait(self) -> Result<()> {
+        self.task.await.context("the server task failed")?
+    }
+
+    /// Stops the server and waits for it.
+    pub async fn stop(self) -> Result<()> {
+        self.begin_shutdown();
+        self.wait().await
+    }
+}
+
+/// Loads the models (unless given), binds, and serves until shut down.
+pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Result<RunningServer> {
+    config.validate()?;
+    let registry = match registry {
+        Some(r) => r,
+        None => {
+            let cfg = config.clone();
+            let (registry, failures) =
+                tokio::task::spawn_blocking(move || ModelRegistry::load(&cfg))
+                    .await
+                    .context("model loading panicked")?
+                    .map_err(|f| {
+                        anyhow::anyhow!("model {} could not be loaded: {}", f.source, f.error)
+                    })?;
+            for f in failures {
+                tracing::error!(source = %f.source, error = %f.error, "model not loaded; serving the others");
+            }
+            registry
+        }
+    };
+    for model in registry.all() {
+        let id = model.identity();
+        tracing::info!(name = %id.name, version = %id.version, sha256 = %id.sha256, engine = id.engine, "model ready");
+    }
+    let pool = pool::WorkerPool::start(config.worker_count(), config.max_sessions * 2)
+        .context("starting worker threads")?;
+    let stats = Arc::new(ServerStats::default());
+    let draining = Arc::new(AtomicBool::new(false));
+    let hard_stop = CancellationToken::new();
+    let shutdown = CancellationToken::new();
+
+    let listener = TcpListener::bind(config.listen)
+        .await
+        .with_context(|| format!("binding {}", config.listen))?;
+    let addr = listener.local_addr()?;
+    let metrics_addr = match config.metrics_listen {
+        Some(at) => {
+            let l = TcpListener::bind(at)
+                .await
+                .with_context(|| format!("binding the metrics port {at}"))?;
+            let local = l.local_addr()?;
+            tokio::spawn(metrics::serve(l, stats.clone(), shutdown.clone()));
+            Some(local)
+        }
+        None => None,
+    };
+
+    let service = Service::new(
+        &config,
+        registry,
+        pool,
+        stats.clone(),
+        draining.clone(),
+        hard_stop.clone(),
+    );
+    let grpc = FrameAnalysisServer::new(service)
+        .max_decoding_message_size(config.max_message_bytes)
+        .max_encoding_message_size(config.max_message_bytes);
+    let (health, health_service) = tonic_health::server::health_reporter();
+    health.set_serving::<FrameAnalysisServer<Service>>().await;
+    health
+        .set_service_status("", tonic_health::ServingStatus::Serving)
+        .await;
+
+    let mut builder = tonic::transport::Server::builder();
+    if let Some(tls) = &config.tls {
+        let cert =
+            std::fs::read(&tls.cert).with_context(|| format!("reading {}", tls.cert.display()))?;
+        let key =
+            std::fs::read(&tls.key).with_context(|| format!("reading {}", tls.key.display()))?;
+        let mut tls_config = ServerTlsConfig::new().identity(Identity::from_pem(cert, key));
+        if let Some(ca) = &tls.client_ca {
+            let ca = std::fs::read(ca).with_context(|| format!("reading {}", ca.display()))?;
+            tls_config = tls_config.client_ca_root(Certificate::from_pem(ca));
+        }
+        builder = builder.tls_config(tls_config).context("TLS settings")?;
+    }
+    let transport_stop = CancellationToken::new();
+    let router = builder.add_service(health_service).add_service(grpc);
+    let serve = {
+        let transport_stop = transport_stop.clone();
+        router.serve_with_incoming_shutdown(TcpListenerStream::new(listener), async move {
+            transport_stop.cancelled().await;
+        })
+    };
+    let drain = config.drain();
+    let task = {
+        let (shutdown, stats) = (shutdown.clone(), stats.clone());
+        tokio::spawn(async move {
+            let serving = tokio::spawn(serve);
+            shutdown.cancelled().await;
+            tracing::info!("shutting down: NOT_SERVING, no new sessions");
+            health
+                .set_not_serving::<FrameAnalysisServer<Service>>()
+                .await;
+            health
+                .set_service_status("", tonic_health::ServingStatus::NotServing)
+                .await;
+            draining.store(true, Ordering::Relaxed);
+            let deadline = tokio::time::Instant::now() + drain;
+            while stats.sessions_open.load(Ordering::Relaxed) > 0
+                && tokio::time::Instant::now() < deadline
+            {
+                tokio::time::sleep(Duration::from_millis(20)).await;
+            }
+            let left = stats.sessions_open.load(Ordering::Relaxed);
+            if left > 0 {
+                tracing::warn!(
+                    sessions = left,
+                    "drain deadline passed; ending the open sessions"
+                );
+            }
+            hard_stop.cancel();
+            let settle = tokio::time::Instant::now() + TRANSPORT_CLOSE_GRACE;
+            while stats.sessions_open.load(Ordering::Relaxed) > 0
+                && tokio::time::Instant::now() < settle
+            {
+                tokio::time::sleep(Duration::from_millis(10)).await;
+            }
+            transport_stop.cancel();
+            match tokio::time::timeout(TRANSPORT_CLOSE_GRACE, serving).await {
+                Ok(Ok(result)) => result.context("the gRPC transport failed"),
+                Ok(Err(e)) => Err(anyhow::anyhow!("the gRPC transport task failed: {e}")),
+                Err(_) => {
+                    tracing::warn!("connections still open after the grace period; closing");
+                    Ok(())
+                }
+            }
+        })
+    };
+    Ok(RunningServer {
+        addr,
+        metrics_addr,
+        stats,
+        shutdown,
+        task,
+    })
+}

@@ -1,0 +1,253 @@
+//! The gRPC service: session admission (token, limits, model, settings) and the unary calls.
+//! Engine errors become gRPC statuses here, once.
+
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+
+use framewise_engine::{CAUTION, FrameLimits};
+use framewise_proto::v1 as pb;
+use pb::frame_analysis_server::FrameAnalysis;
+use tokio::sync::{Semaphore, mpsc};
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_util::sync::CancellationToken;
+use tonic::{Request, Response, Status, Streaming};
+
+use crate::config::{ANSWER_BUFFER, ServerConfig};
+use crate::convert;
+use crate::pool::WorkerPool;
+use crate::registry::ModelRegistry;
+use crate::session::{self, SessionContext};
+use crate::stats::{ServerStats, bump};
+
+/// Shared state of the service.
+pub struct Service {
+    registry: ModelRegistry,
+    pool: WorkerPool,
+    stats: Arc<ServerStats>,
+    sessions: Arc<Semaphore>,
+    max_sessions: usize,
+    limits: FrameLimits,
+    token: Option<String>,
+    idle_timeout: std::time::Duration,
+    draining: Arc<AtomicBool>,
+    hard_stop: CancellationToken,
+    next_id: AtomicU64,
+}
+
+impl Service {
+    /// A service over loaded models and a worker pool.
+    pub fn new(
+        config: &ServerConfig,
+        registry: ModelRegistry,
+        pool: WorkerPool,
+        stats: Arc<ServerStats>,
+        draining: Arc<AtomicBool>,
+        hard_stop: CancellationToken,
+    ) -> Self {
+        Self {
+            registry,
+            pool,
+            stats,
+            sessions: Arc::new(Semaphore::new(config.max_sessions)),
+            max_sessions: config.max_sessions,
+            limits: FrameLimits {
+                max_width: config.max_frame_width,
+                max_height: config.max_frame_height,
+            },
+            token: config.token.clone(),
+            idle_timeout: config.idle_timeout(),
+            draining,
+            hard_stop,
+            next_id: AtomicU64::new(1),
+        }
+    }
+
+    fn authorise<T>(&self, request: &Request<T>) -> Result<(), Status> {
+        let Some(expected) = &self.token else {
+            return Ok(());
+        };
+        let given = request
+            .metadata()
+            .get("authorization")
+            .and_then(|v| v.to_str().ok())
+            .and_then(|v| v.strip_prefix("Bearer "));
+        match given {
+            Some(given) if constant_time_eq(given.as_bytes(), expected.as_bytes()) => Ok(()),
+            Some(_) => Err(Status::unauthenticated("the bearer token is not valid")),
+            None => Err(Status::unauthenticated(
+                "this server needs `authorization: Bearer <token>`",
+            )),
+        }
+    }
+
+    fn refuse(&self, status: Status) -> Status {
+        bump(&self.stats.sessions_refused);
+        status
+    }
+}
+
+/// Compares two byte strings in time that depends only on their lengths.
+fn constant_time_eq(a: &[u8], b: &[u8]) -> bool {
+    if a.len() != b.len() {
+        return false;
+    }
+    a.iter().zip(b).fold(0u8, |acc, (x, y)| acc | (x ^ y)) == 0
+}
+
+/// Decrements the open-session gauge when a session task ends, however it ends.
+struct OpenSession(Arc<ServerStats>);
+
+impl Drop for OpenSession {
+    fn drop(&mut self) {
+        self.0.sessions_open.fetch_sub(1, Ordering::Relaxed);
+    }
+}
+
+#[tonic::async_trait]
+impl FrameAnalysis for Service {
+    type ConverseStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
+
+    async fn converse(
+        &self,
+        request: Request<Streaming<pb::SessionInput>>,
+    ) -> Result<Response<Self::ConverseStream>, Status> {
+        self.authorise(&request).map_err(|s| self.refuse(s))?;
+        if self.draining.load(Ordering::Relaxed) {
+            return Err(self.refuse(Status::unavailable(
+                "the server is shutting down and takes no new sessions",
+            )));
+        }
+        let permit = self.sessions.clone().try_acquire_owned().map_err(|_| {
+            self.refuse(Status::resource_exhausted(format!(
+                "the server already has its maximum of {} open sessions",
+                self.max_sessions
+            )))
+        })?;
+        let mut inbound = request.into_inner();
+        let first = tokio::time::timeout(self.idle_timeout, inbound.message())
+            .await
+            .map_err(|_| {
+                self.refuse(Status::deadline_exceeded(
+                    "no SessionOpening arrived within the idle timeout",
+                ))
+            })?
+            .map_err(|s| self.refuse(s))?;
+        let opening = match first.and_then(|m| m.item) {
+            Some(pb::session_input::Item::Opening(o)) => o,
+            Some(pb::session_input::Item::Frame(_)) => {
+                return Err(self.refuse(Status::invalid_argument(
+                    "session input: the first message must be a SessionOpening, not a frame",
+                )));
+            }
+            None => {
+                return Err(self.refuse(Status::invalid_argument(
+                    "session input: the stream ended before a SessionOpening",
+                )));
+            }
+        };
+        let model = self.registry.get(&opening.model).cloned().ok_or_else(|| {
+            let known: Vec<&str> = self
+                .registry
+                .all()
+                .iter()
+                .map(|m| m.identity().name.as_str())
+                .collect();
+            self.refuse(Status::not_found(format!(
+                "session opening field `model`: no model named `{}`; this server has {known:?}",
+                opening.model
+            )))
+        })?;
+        let plan = convert::session_plan(&opening, &model, self.limits)
+            .map_err(|e| self.refuse(Status::invalid_argument(e.to_string())))?;
+        let id = format!("s{:06}", self.next_id.fetch_add(1, Ordering::Relaxed));
+        let accepted = pb::SessionAccepted {
+            session_id: id.clone(),
+            model: Some(convert::identity(&model)),
+            classes: model.classes().to_vec(),
+            input: Some(convert::input_recipe(&model)),
+            settings: Some(convert::wire_settings(&plan, &model.identity().name)),
+            caution: CAUTION.into(),
+            model_caution: model.manifest().caution.clone(),
+            intended_use: model.manifest().intended_use.clone(),
+        };
+        let (outbox, answers) = mpsc::channel(ANSWER_BUFFER);
+        let first = pb::SessionOutput {
+            item: Some(pb::session_output::Item::Accepted(accepted)),
+        };
+        outbox
+            .send(Ok(first))
+            .await
+            .map_err(|_| Status::cancelled("the client left"))?;
+        bump(&self.stats.sessions_total);
+        self.stats.sessions_open.fetch_add(1, Ordering::Relaxed);
+        tracing::info!(session = %id, model = %model.identity().name, source = %plan.source_label, policy = ?plan.policy, "session opened");
+        let ctx = SessionContext {
+            id,
+            model,
+            plan,
+            pool: self.pool.clone(),
+            stats: self.stats.clone(),
+            idle_timeout: self.idle_timeout,
+            hard_stop: self.hard_stop.clone(),
+        };
+        let open = OpenSession(self.stats.clone());
+        tokio::spawn(async move {
+            let _permit = permit;
+            let _open = open;
+            session::run(ctx, inbound, outbox).await;
+        });
+        Ok(Response::new(ReceiverStream::new(answers)))
+    }
+
+    async fn list_models(
+        &self,
+        request: Request<pb::ListModelsRequest>,
+    ) -> Result<Response<pb::ListModelsReply>, Status> {
+        self.authorise(&request)?;
+        let models = self
+            .registry
+            .all()
+            .iter()
+            .enumerate()
+            .map(|(i, m)| convert::description(m, i == 0))
+            .collect();
+        Ok(Response::new(pb::ListModelsReply {
+            models,
+            caution: CAUTION.into(),
+        }))
+    }
+
+    async fn describe_model(
+        &self,
+        request: Request<pb::DescribeModelRequest>,
+    ) -> Result<Response<pb::ModelDescription>, Status> {
+        self.authorise(&request)?;
+        let name = &request.get_ref().name;
+        let model = self
+            .registry
+            .get(name)
+            .ok_or_else(|| Status::not_found(format!("no model named `{name}`")))?;
+        let is_default = self.registry.get("").is_some_and(|d| Arc::ptr_eq(d, model));
+        Ok(Response::new(convert::description(model, is_default)))
+    }
+
+    async fn read_statistics(
+        &self,
+        request: Request<pb::StatisticsRequest>,
+    ) -> Result<Response<pb::ServerStatistics>, Status> {
+        self.authorise(&request)?;
+        let s = self.stats.snapshot();
+        Ok(Response::new(pb::ServerStatistics {
+            sessions_open: s.sessions_open,
+            sessions_total: s.sessions_total,
+            frames: s.frames,
+            results: s.results,
+            skipped: s.skipped,
+            errors: s.errors,
+            deadline_missed: s.deadline_missed,
+            stages: convert::percentiles(&s.stages),
+            uptime_s: s.uptime_s,
+            caution: CAUTION.into(),
+        }))
+    }
+}

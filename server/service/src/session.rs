@@ -1,0 +1,460 @@
+//! One session: the opening, then every frame answered exactly once under the session's frame policy, then
+//! the summary.
+//!
+//! Every-frame: the session reads the next frame only after answering the previous one, so when the server
+//! falls behind the transport's flow control slows the sender. Latest-only: a reader keeps at most one
+//! frame waiting and answers an overtaken one as skipped at once.
+
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use framewise_engine::latency::{LatencyBook, StageTimings};
+use framewise_engine::pipeline::{self, Scratch, Smoother};
+use framewise_engine::{CAUTION, FrameRef, Model, PixelFormat};
+use framewise_proto::v1 as pb;
+use tokio::sync::{Notify, mpsc};
+use tokio_util::sync::CancellationToken;
+use tonic::Status;
+
+use crate::convert::{self, FramePolicy, SessionPlan};
+use crate::pool::WorkerPool;
+use crate::stats::{ServerStats, bump};
+
+/// What a session needs from the server.
+#[derive(Clone)]
+pub struct SessionContext {
+    /// Session id.
+    pub id: String,
+    /// The model.
+    pub model: Arc<Model>,
+    /// The checked opening.
+    pub plan: SessionPlan,
+    /// Worker pool.
+    pub pool: WorkerPool,
+    /// Server statistics.
+    pub stats: Arc<ServerStats>,
+    /// Idle timeout.
+    pub idle_timeout: Duration,
+    /// Cancelled when the server's drain deadline passes.
+    pub hard_stop: CancellationToken,
+}
+
+/// Answers go out through this channel.
+pub type Outbox = mpsc::Sender<Result<pb::SessionOutput, Status>>;
+
+/// A frame with its arrival time.
+struct Arrived {
+    frame: pb::Frame,
+    arrival: Instant,
+}
+
+/// Per-session counters and histograms.
+#[derive(Default)]
+struct Tally {
+    frames: u64,
+    results: u64,
+    skipped: u64,
+    errors: u64,
+    deadline_missed: u64,
+    latency: LatencyBook,
+}
+
+/// The moving parts of a session that process frames in order.
+struct Processor {
+    ctx: SessionContext,
+    identity: pb::ModelIdentity,
+    scratch: Option<Scratch>,
+    smoother: Smoother,
+    started: Instant,
+    tally: Arc<Mutex<Tally>>,
+}
+
+fn answer(
+    seq: u64,
+    capture_time_us: i64,
+    identity: &pb::ModelIdentity,
+    outcome: pb::answer::Outcome,
+) -> pb::SessionOutput {
+    pb::SessionOutput {
+        item: Some(pb::session_output::Item::Answer(pb::Answer {
+            seq,
+            capture_time_us,
+            outcome: Some(outcome),
+            model: Some(identity.clone()),
+            caution: CAUTION.into(),
+        })),
+    }
+}
+
+fn frame_error(kind: &str, message: String) -> pb::answer::Outcome {
+    pb::answer::Outcome::Error(pb::FrameError {
+        kind: kind.into(),
+        message,
+    })
+}
+
+impl Processor {
+    /// The capture time to use: the frame's, or the arrival time since the session started.
+    fn capture_time_us(&self, arrived: &Arrived) -> i64 {
+        if arrived.frame.capture_time_us != 0 {
+            arrived.frame.capture_time_us
+        } else {
+            arrived.arrival.duration_since(self.started).as_micros() as i64
+        }
+    }
+
+    /// Analyses one frame and returns its answer.
+    async fn process(&mut self, arrived: Arrived) -> pb::SessionOutput {
+        let seq = arrived.frame.seq;
+        let t_us = self.capture_time_us(&arrived);
+        let format = match convert::pixel_format(arrived.frame.format) {
+            Ok(Some(f)) => Some(f),
+            Ok(None) => self.ctx.plan.default_format,
+            Err(v) => {
+                self.count_error();
+                return answer(
+                    seq,
+                    t_us,
+                    &self.identity,
+                    frame_error(
+                        "bad_format",
+                        format!("frame {seq}: pixel format {v} is not known"),
+                    ),
+                );
+            }
+        };
+        let Some(format) = format else {
+            self.count_error();
+            let message =
+                format!("frame {seq}: no pixel format, and the session set no default_format");
+            return answer(
+                seq,
+                t_us,
+                &self.identity,
+                frame_error("bad_format", message),
+            );
+        };
+        let model = self.ctx.model.clone();
+        let spec = self.ctx.plan.settings.frame;
+        let mut scratch = self.scratch.take().unwrap_or_default();
+        let frame = arrived.frame;
+        let queued = Instant::now();
+        let work = move || {
+            let queue_us = pipeline::micros_since(queued);
+            let frame_ref = frame_ref(&frame, format);
+            let result = pipeline::analyse(&model, &frame_ref, &spec, &mut scratch);
+            (scratch, queue_us, result)
+        };
+        let (scratch, queue_us, result) = match self.ctx.pool.run(work).await {
+            Ok(done) => done,
+            Err(stopped) => {
+                self.count_error();
+                return answer(
+                    seq,
+                    t_us,
+                    &self.identity,
+                    frame_error("unavailable", format!("frame {seq}: {stopped}")),
+                );
+            }
+        };
+        self.scratch = Some(scratch);
+        let analysed = match result {
+            Ok(a) => a,
+            Err(e) => {
+                self.count_error();
+                return answer(
+                    seq,
+                    t_us,
+                    &self.identity,
+                    frame_error(e.kind(), format!("frame {seq}: {e}")),
+                );
+            }
+        };
+        let filter_start = Instant::now();
+        let smoothed = self
+            .smoother
+            .smooth(t_us as f64 / 1000.0, &analysed.raw, &analysed.quality);
+        let filter_us = pipeline::micros_since(filter_start);
+        let timings = StageTimings {
+            queue_us,
+            preprocess_us: analysed.preprocess_us,
+            inference_us: analysed.inference_us,
+            filter_us,
+            total_us: pipeline::micros_since(arrived.arrival),
+        };
+        let deadline_missed =
+            self.ctx.plan.deadline_us > 0 && timings.total_us > self.ctx.plan.deadline_us;
+        self.ctx.stats.record(&timings);
+        bump(&self.ctx.stats.results);
+        if deadline_missed {
+            bump(&self.ctx.stats.deadline_missed);
+        }
+        if let Ok(mut tally) = self.tally.lock() {
+            tally.results += 1;
+            tally.deadline_missed += u64::from(deadline_missed);
+            tally.latency.record(&timings);
+        }
+        let result = pb::FrameResult {
+            raw: analysed.raw,
+            smoothed: smoothed.smoothed,
+            decision: Some(convert::decision(
+                smoothed.decision,
+                self.ctx.model.classes(),
+            )),
+            quality: Some(convert::quality(&analysed.quality, &smoothed.verdict)),
+            timings: Some(convert::timings(&timings)),
+            deadline_missed,
+        };
+        answer(
+            seq,
+            t_us,
+            &self.identity,
+            pb::answer::Outcome::Result(result),
+        )
+    }
+
+    fn count_error(&self) {
+        bump(&self.ctx.stats.errors);
+        if let Ok(mut tally) = self.tally.lock() {
+            tally.errors += 1;
+        }
+    }
+}
+
+fn frame_ref(frame: &pb::Frame, format: PixelFormat) -> FrameRef<'_> {
+    FrameRef {
+        format,
+        width: frame.width,
+        height: frame.height,
+        stride: frame.stride,
+        data: &frame.data,
+    }
+}
+
+/// Reads the next frame, with the idle timeout. `Ok(None)` when the client half-closed.
+async fn next_frame(
+    inbound: &mut tonic::Streaming<pb::SessionInput>,
+    ctx: &SessionContext,
+) -> Result<Option<Arrived>, Status> {
+    let message = tokio::select! {
+        m = tokio::time::timeout(ctx.idle_timeout, inbound.message()) => m,
+        _ = ctx.hard_stop.cancelled() => return Err(Status::unavailable("the server is shutting down; the session was ended at the drain deadline")),
+    };
+    let message = match message {
+        Err(_) => {
+            return Err(Status::deadline_exceeded(format!(
+                "no message for {:.0} s (idle timeout); the session was ended",
+                ctx.idle_timeout.as_secs_f64()
+            )));
+        }
+        Ok(Err(status)) => return Err(status),
+        Ok(Ok(None)) => return Ok(None),
+        Ok(Ok(Some(m))) => m,
+    };
+    match message.item {
+        Some(pb::session_input::Item::Frame(frame)) => Ok(Some(Arrived {
+            frame,
+            arrival: Instant::now(),
+        })),
+        Some(pb::session_input::Item::Opening(_)) => Err(Status::invalid_argument(
+            "session input: a second SessionOpening arrived; only frames may follow the first",
+        )),
+        None => Err(Status::invalid_argument(
+            "session input: a message with neither opening nor frame",
+        )),
+    }
+}
+
+/// Runs a session after its opening was accepted: answers every frame and sends the summary.
+pub async fn run(ctx: SessionContext, inbound: tonic::Streaming<pb::SessionInput>, outbox: Outbox) {
+    let tally = Arc::new(Mutex::new(Tally::default()));
+    let smoother = match Smoother::new(&ctx.plan.settings, ctx.model.classes().len()) {
+        Ok(s) => s,
+        Err(e) => {
+            let _ = outbox
+                .send(Err(Status::invalid_argument(e.to_string())))
+                .await;
+            return;
+        }
+    };
+    let processor = Processor {
+        identity: convert::identity(&ctx.model),
+        ctx: ctx.clone(),
+        scratch: Some(Scratch::default()),
+        smoother,
+        started: Instant::now(),
+        tally: tally.clone(),
+    };
+    let ended = match ctx.plan.policy {
+        FramePolicy::EveryFrame => every_frame(processor, inbound, &outbox).await,
+        FramePolicy::LatestOnly => latest_only(processor, inbound, &outbox).await,
+    };
+    let summary = {
+        let tally = tally.lock().map(|t| Tally {
+            frames: t.frames,
+            results: t.results,
+            skipped: t.skipped,
+            errors: t.errors,
+            deadline_missed: t.deadline_missed,
+            latency: t.latency.clone(),
+        });
+        tally.unwrap_or_default()
+    };
+    let stages = summary.latency.summary();
+    let total = stages
+        .iter()
+        .find(|s| s.stage == "total")
+        .cloned()
+        .unwrap_or_default();
+    tracing::info!(
+        session = %ctx.id,
+        source = %ctx.plan.source_label,
+        frames = summary.frames,
+        results = summary.results,
+        skipped = summary.skipped,
+        errors = summary.errors,
+        deadline_missed = summary.deadline_missed,
+        total_p50_us = total.p50,
+        total_p99_us = total.p99,
+        total_max_us = total.max,
+        "session ended"
+    );
+    match ended {
+        Ok(()) => {
+            let message = pb::SessionOutput {
+                item: Some(pb::session_output::Item::Summary(pb::SessionSummary {
+                    session_id: ctx.id.clone(),
+                    frames: summary.frames,
+                    results: summary.results,
+                    skipped: summary.skipped,
+                    errors: summary.errors,
+                    deadline_missed: summary.deadline_missed,
+                    stages: convert::percentiles(&stages),
+                    caution: CAUTION.into(),
+                })),
+            };
+            let _ = outbox.send(Ok(message)).await;
+        }
+        Err(status) => {
+            // The client may be gone already; nothing more to do then.
+            let _ = outbox.send(Err(status)).await;
+        }
+    }
+}
+
+fn count_frame(tally: &Mutex<Tally>, stats: &ServerStats) {
+    bump(&stats.frames);
+    if let Ok(mut t) = tally.lock() {
+        t.frames += 1;
+    }
+}
+
+async fn every_frame(
+    mut processor: Processor,
+    mut inbound: tonic::Streaming<pb::SessionInput>,
+    outbox: &Outbox,
+) -> Result<(), Status> {
+    loop {
+        let Some(arrived) = next_frame(&mut inbound, &processor.ctx).await? else {
+            return Ok(());
+        };
+        count_frame(&processor.tally, &processor.ctx.stats);
+        let out = processor.process(arrived).await;
+        if outbox.send(Ok(out)).await.is_err() {
+            // The client went away: a normal end.
+            return Ok(());
+        }
+    }
+}
+
+/// The single waiting slot of a latest-only session.
+struct Slot {
+    waiting: Option<Arrived>,
+    closed: Option<Result<(), Status>>,
+}
+
+async fn latest_only(
+    mut processor: Processor,
+    mut inbound: tonic::Streaming<pb::SessionInput>,
+    outbox: &Outbox,
+) -> Result<(), Status> {
+    let slot = Arc::new(Mutex::new(Slot {
+        waiting: None,
+        closed: None,
+    }));
+    let wake = Arc::new(Notify::new());
+    let reader = {
+        let (slot, wake, outbox) = (slot.clone(), wake.clone(), outbox.clone());
+        let ctx = processor.ctx.clone();
+        let identity = processor.identity.clone();
+        let tally = processor.tally.clone();
+        let started = processor.started;
+        tokio::spawn(async move {
+            let end = loop {
+                match next_frame(&mut inbound, &ctx).await {
+                    Ok(Some(arrived)) => {
+                        count_frame(&tally, &ctx.stats);
+                        let by = arrived.frame.seq;
+                        let overtaken = slot
+                            .lock()
+                            .ok()
+                            .and_then(|mut s| s.waiting.replace(arrived));
+                        wake.notify_one();
+                        if let Some(old) = overtaken {
+                            bump(&ctx.stats.skipped);
+                            if let Ok(mut t) = tally.lock() {
+                                t.skipped += 1;
+                            }
+                            let t_us = if old.frame.capture_time_us != 0 {
+                                old.frame.capture_time_us
+                            } else {
+                                old.arrival.duration_since(started).as_micros() as i64
+                            };
+                            let skipped =
+                                pb::answer::Outcome::Skipped(pb::Skipped { overtaken_by: by });
+                            if outbox
+                                .send(Ok(answer(old.frame.seq, t_us, &identity, skipped)))
+                                .await
+                                .is_err()
+                            {
+                                break Ok(());
+                            }
+                        }
+                    }
+                    Ok(None) => break Ok(()),
+                    Err(status) => break Err(status),
+                }
+            };
+            if let Ok(mut s) = slot.lock() {
+                s.closed = Some(end);
+            }
+            wake.notify_one();
+        })
+    };
+    let result = loop {
+        let next = {
+            match slot.lock() {
+                Ok(mut s) => match s.waiting.take() {
+                    Some(a) => Ok(Some(a)),
+                    None => match s.closed.take() {
+                        Some(end) => Err(end),
+                        None => Ok(None),
+                    },
+                },
+                Err(_) => Err(Err(Status::internal("session state poisoned"))),
+            }
+        };
+        match next {
+            Ok(Some(arrived)) => {
+                let out = processor.process(arrived).await;
+                if outbox.send(Ok(out)).await.is_err() {
+                    break Ok(());
+                }
+            }
+            Ok(None) => wake.notified().await,
+            Err(end) => break end,
+        }
+    };
+    reader.abort();
+    result
+}
