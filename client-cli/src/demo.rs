@@ -1,0 +1,201 @@
+//! `demo`: the whole path in one command, with nothing to set up. Starts a server in this process on the
+//! embedded demo model, generates a synthetic phantom sweep, streams it at its recorded pace while showing
+//! the live call, then prints the summary and writes the results and plots.
+
+use std::io::IsTerminal;
+use std::path::PathBuf;
+use std::sync::Arc;
+
+use anyhow::{Context, Result};
+use clap::Args;
+use framewise_engine::CAUTION;
+use framewise_models_demo::phantom::CLASSES;
+use framewise_models_demo::recording::{Recording, RecordingKind};
+
+use crate::output::{self, FrameRecord};
+use crate::recording::FrameData;
+use crate::replay::{self, FrameSource, Pacing, Target};
+use crate::score;
+use crate::settings::SessionFlags;
+
+/// Options of `demo`.
+#[derive(Debug, Clone, Args)]
+pub struct DemoArgs {
+    /// Length of the synthetic sweep in seconds.
+    #[arg(long, default_value_t = 20.0)]
+    pub seconds: f64,
+    /// Frame rate of the sweep.
+    #[arg(long, default_value_t = 30.0)]
+    pub fps: f64,
+    /// Seed of the sweep.
+    #[arg(long, default_value_t = 42)]
+    pub seed: u64,
+    /// Send frames as fast as answers come back instead of at the recorded pace.
+    #[arg(long)]
+    pub fast: bool,
+    /// Folder for results.jsonl, summary.json and the plots.
+    #[arg(long, default_value = "out/demo")]
+    pub out: PathBuf,
+    /// Session settings.
+    #[command(flatten)]
+    pub session: SessionFlags,
+}
+
+/// The synthetic sweep as a frame source (frames rendered on demand).
+struct Synthetic {
+    recording: Recording,
+    description: String,
+}
+
+impl FrameSource for Synthetic {
+    fn len(&self) -> usize {
+        self.recording.len()
+    }
+    fn meta(&self, i: usize) -> (String, f64, Option<String>) {
+        let (t, label) = self.recording.meta(i).unwrap_or_default();
+        (format!("frame_{i:06}"), t, Some(CLASSES[label].to_string()))
+    }
+    fn read(&self, i: usize) -> Result<FrameData> {
+        let (width, height) = self.recording.size();
+        let data = self.recording.render(i).context("no such frame")?;
+        Ok(FrameData {
+            format: framewise_engine::PixelFormat::Rgb8,
+            width,
+            height,
+            data,
+        })
+    }
+    fn describe(&self) -> String {
+        self.description.clone()
+    }
+}
+
+/// Runs the demo.
+pub async fn run(args: DemoArgs) -> Result<()> {
+    anyhow::ensure!(
+        args.seconds > 0.0 && args.seconds <= 600.0,
+        "--seconds must be in (0, 600]"
+    );
+    anyhow::ensure!(
+        args.fps > 0.0 && args.fps <= 120.0,
+        "--fps must be in (0, 120]"
+    );
+    eprintln!("framewise demo. {CAUTION}");
+    eprintln!(
+        "The demo model is a toy trained on an invented bench-top phantom; it is not a medical model."
+    );
+    let config = framewise_server::ServerConfig {
+        listen: "127.0.0.1:0".parse()?,
+        ..Default::default()
+    };
+    let server = framewise_server::start(config, None)
+        .await
+        .context("starting the in-process server")?;
+    let url = format!("http://{}", server.addr);
+    eprintln!(
+        "in-process server on {url}; streaming a {:.0} s synthetic sweep at {:.0} fps",
+        args.seconds, args.fps
+    );
+    let recording = Recording::plan(
+        RecordingKind::Sweep {
+            seconds: args.seconds,
+            fps: args.fps,
+        },
+        args.seed,
+        640,
+        480,
+    );
+    let source: Arc<dyn FrameSource> = Arc::new(Synthetic {
+        recording,
+        description: format!(
+            "synthetic phantom sweep, seed {}, {} s at {} fps, 640x480",
+            args.seed, args.seconds, args.fps
+        ),
+    });
+    std::fs::create_dir_all(&args.out)
+        .with_context(|| format!("creating {}", args.out.display()))?;
+    let results_path = args.out.join("results.jsonl");
+    let live = std::io::stderr().is_terminal();
+    let total = source.len();
+    let pacing = if args.fast {
+        Pacing::Fast
+    } else {
+        Pacing::Speed(1.0)
+    };
+    let mut shown = 0usize;
+    let tally = replay::replay(
+        source.clone(),
+        &Target::Server {
+            url: url.clone(),
+            token: None,
+        },
+        &args.session,
+        pacing,
+        Some(&results_path),
+        false,
+        |r: &FrameRecord| {
+            shown += 1;
+            if live && (shown % 3 == 0 || shown == total) {
+                eprint!("\r\x1b[2K{}", live_line(r, shown, total));
+            }
+        },
+    )
+    .await?;
+    if live {
+        eprintln!();
+    }
+    server.stop().await?;
+    let records = score::read_results(&results_path)?;
+    let report = score::Report::compute(&records.1, &records.0.classes)?;
+    println!("{}", output::caution_line());
+    println!(
+        "model: {} {} (sha256 {}), engine {}",
+        records.0.model.name,
+        records.0.model.version,
+        records.0.model.sha256,
+        records.0.model.engine
+    );
+    println!(
+        "frames: {} sent, {} results, {} skipped, {} errors, in {:.1} s",
+        tally.frames,
+        tally.results,
+        tally.skipped,
+        tally.errors,
+        tally.elapsed.as_secs_f64()
+    );
+    println!("{}", report.human());
+    std::fs::write(
+        args.out.join("summary.json"),
+        serde_json::to_string_pretty(&report.json(&records.0))?,
+    )
+    .context("writing summary.json")?;
+    let plots = crate::plot::timeline(&records.0, &records.1, &args.out.join("timeline.svg"))?;
+    println!("results: {}", results_path.display());
+    println!("summary: {}", args.out.join("summary.json").display());
+    println!("plot:    {}", plots.display());
+    Ok(())
+}
+
+fn live_line(r: &FrameRecord, n: usize, total: usize) -> String {
+    let label = r.label.as_deref().unwrap_or("-");
+    let raw = argmax(&r.raw)
+        .map(|(i, p)| format!("{} {:.2}", CLASSES.get(i).unwrap_or(&"?"), p))
+        .unwrap_or_default();
+    let call = match &r.decision {
+        Some(c) => format!("{c} {:.2}", r.confidence),
+        None => "undetermined".into(),
+    };
+    format!(
+        "[{n:>4}/{total}] t={:>6.2}s  phantom zone: {label:<8} per-frame: {raw:<13} call: {call:<16} {:>5.1} ms",
+        r.t_ms / 1000.0,
+        r.round_trip_us as f64 / 1000.0
+    )
+}
+
+/// Index and value of the largest probability.
+pub fn argmax(p: &[f32]) -> Option<(usize, f32)> {
+    p.iter()
+        .copied()
+        .enumerate()
+        .max_by(|a, b| a.1.total_cmp(&b.1))
+}

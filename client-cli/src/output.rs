@@ -1,0 +1,217 @@
+//! What the client writes: JSON Lines with a header object first (caution, model identity, settings), one
+//! object per frame, and aligned tables for people.
+
+use std::io::Write;
+
+use framewise_engine::CAUTION;
+use framewise_proto::v1 as pb;
+use serde::{Deserialize, Serialize};
+
+/// The header line of every JSON Lines file the client writes.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct Header {
+    /// Always "header".
+    pub kind: String,
+    /// The caution.
+    pub caution: String,
+    /// framewise version that wrote the file.
+    pub framewise: String,
+    /// The model's identity.
+    pub model: ModelInfo,
+    /// Class names in probability order.
+    pub classes: Vec<String>,
+    /// The model's own caution.
+    #[serde(default)]
+    pub model_caution: String,
+    /// What was replayed.
+    pub source: String,
+    /// Where it ran: a server URL, or "offline".
+    pub engine_at: String,
+    /// Settings in force.
+    pub settings: serde_json::Value,
+}
+
+/// A model's identity.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq, Eq)]
+pub struct ModelInfo {
+    /// Name.
+    pub name: String,
+    /// Version.
+    pub version: String,
+    /// SHA-256 of the ONNX file.
+    pub sha256: String,
+    /// Inference engine.
+    pub engine: String,
+}
+
+impl From<&pb::ModelIdentity> for ModelInfo {
+    fn from(m: &pb::ModelIdentity) -> Self {
+        Self {
+            name: m.name.clone(),
+            version: m.version.clone(),
+            sha256: m.sha256.clone(),
+            engine: m.engine.clone(),
+        }
+    }
+}
+
+/// Stage timings in microseconds.
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq, Eq)]
+pub struct Timings {
+    /// Waiting for a worker.
+    pub queue: u64,
+    /// Decode and preprocess.
+    pub preprocess: u64,
+    /// Inference.
+    pub inference: u64,
+    /// Filter and decision.
+    pub filter: u64,
+    /// Total in the server (or the offline engine).
+    pub total: u64,
+}
+
+/// One frame's line.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+pub struct FrameRecord {
+    /// "result", "skipped" or "error".
+    pub kind: String,
+    /// Sequence number (the frame's index in the recording).
+    pub seq: u64,
+    /// Frame file or number.
+    pub name: String,
+    /// Capture time in milliseconds.
+    pub t_ms: f64,
+    /// The recording's label, if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub label: Option<String>,
+    /// Raw probabilities.
+    #[serde(default)]
+    pub raw: Vec<f32>,
+    /// Smoothed probabilities.
+    #[serde(default)]
+    pub smoothed: Vec<f32>,
+    /// Called class, if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decision: Option<String>,
+    /// Smoothed probability of the called class.
+    #[serde(default)]
+    pub confidence: f32,
+    /// Whether the frame passed the quality gate.
+    #[serde(default)]
+    pub usable: bool,
+    /// Focus measure.
+    #[serde(default)]
+    pub focus: f64,
+    /// Clipped share (dark + bright).
+    #[serde(default)]
+    pub clipped: f64,
+    /// Stage timings.
+    #[serde(default)]
+    pub timings_us: Timings,
+    /// End-to-end latency seen by the client, microseconds (0 offline).
+    #[serde(default)]
+    pub round_trip_us: u64,
+    /// Error message for "error" lines.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub error: Option<String>,
+}
+
+impl FrameRecord {
+    /// A record from a server answer.
+    pub fn from_answer(a: &pb::Answer, name: String, t_ms: f64, label: Option<String>) -> Self {
+        let mut r = FrameRecord {
+            seq: a.seq,
+            name,
+            t_ms,
+            label,
+            ..Default::default()
+        };
+        match &a.outcome {
+            Some(pb::answer::Outcome::Result(res)) => {
+                r.kind = "result".into();
+                r.raw = res.raw.clone();
+                r.smoothed = res.smoothed.clone();
+                if let Some(d) = &res.decision {
+                    if d.determined {
+                        r.decision = Some(d.class_name.clone());
+                        r.confidence = d.confidence;
+                    }
+                }
+                if let Some(q) = &res.quality {
+                    r.usable = q.usable;
+                    r.focus = q.focus;
+                    r.clipped = q.dark_share + q.bright_share;
+                }
+                if let Some(t) = &res.timings {
+                    r.timings_us = Timings {
+                        queue: t.queue_us,
+                        preprocess: t.preprocess_us,
+                        inference: t.inference_us,
+                        filter: t.filter_us,
+                        total: t.total_us,
+                    };
+                }
+            }
+            Some(pb::answer::Outcome::Skipped(s)) => {
+                r.kind = "skipped".into();
+                r.error = Some(format!("overtaken by frame {}", s.overtaken_by));
+            }
+            Some(pb::answer::Outcome::Error(e)) => {
+                r.kind = "error".into();
+                r.error = Some(format!("{}: {}", e.kind, e.message));
+            }
+            None => {
+                r.kind = "error".into();
+                r.error = Some("the answer had no outcome".into());
+            }
+        }
+        r
+    }
+}
+
+/// Writes one JSON line and flushes it, so that a killed process leaves whole lines.
+pub fn write_line<W: Write, T: Serialize>(out: &mut W, value: &T) -> std::io::Result<()> {
+    let mut line = serde_json::to_vec(value).map_err(std::io::Error::other)?;
+    line.push(b'\n');
+    out.write_all(&line)?;
+    out.flush()
+}
+
+/// Prints an aligned table: a header row, then rows.
+pub fn table(headers: &[&str], rows: &[Vec<String>]) -> String {
+    let mut widths: Vec<usize> = headers.iter().map(|h| h.chars().count()).collect();
+    for row in rows {
+        for (i, cell) in row.iter().enumerate() {
+            if i < widths.len() {
+                widths[i] = widths[i].max(cell.chars().count());
+            }
+        }
+    }
+    let fmt_row = |cells: Vec<&str>| -> String {
+        cells
+            .iter()
+            .enumerate()
+            .map(|(i, c)| {
+                let pad = widths[i].saturating_sub(c.chars().count());
+                if i == 0 {
+                    format!("{c}{}", " ".repeat(pad))
+                } else {
+                    format!("{}{c}", " ".repeat(pad))
+                }
+            })
+            .collect::<Vec<_>>()
+            .join("  ")
+    };
+    let mut out = fmt_row(headers.to_vec());
+    out.push('\n');
+    for row in rows {
+        out.push_str(&fmt_row(row.iter().map(String::as_str).collect()));
+        out.push('\n');
+    }
+    out
+}
+
+/// The caution line for human output.
+pub fn caution_line() -> String {
+    format!("caution: {CAUTION}")
+}

@@ -1,0 +1,338 @@
+//! Plots as SVG, written directly (no font files needed; the viewer renders the text). Every plot carries
+//! the caution and the model's identity in its footer.
+
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result};
+use framewise_engine::caution::CAUTION_SHORT;
+
+use crate::output::{FrameRecord, Header};
+
+/// Line colours per class (our own palette; colour-blind friendly hues).
+pub const PALETTE: [&str; 8] = [
+    "#1b6ca8", "#d1495b", "#2a9d8f", "#e9a23b", "#6d597a", "#5c946e", "#b5838d", "#3d405b",
+];
+
+fn escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
+}
+
+/// Probability timeline per class (smoothed solid, raw faint), with the labels and the calls as bands
+/// beneath. Returns the path written.
+pub fn timeline(header: &Header, records: &[FrameRecord], path: &Path) -> Result<PathBuf> {
+    let results: Vec<&FrameRecord> = records.iter().filter(|r| r.kind == "result").collect();
+    let (w, h) = (1200.0, 560.0);
+    let (left, right, top, plot_h) = (70.0, 20.0, 40.0, 300.0);
+    let band_h = 22.0;
+    let t0 = results.first().map_or(0.0, |r| r.t_ms);
+    let t1 = results.last().map_or(1.0, |r| r.t_ms).max(t0 + 1.0);
+    let x = |t: f64| left + (t - t0) / (t1 - t0) * (w - left - right);
+    let y = |p: f64| top + (1.0 - p) * plot_h;
+    let classes = &header.classes;
+    let colour = |i: usize| PALETTE[i % PALETTE.len()];
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
+    );
+    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let _ = writeln!(
+        s,
+        r#"<text x="{left}" y="22" font-size="15">Class probabilities over time: {}</text>"#,
+        escape(&header.source)
+    );
+    for p in [0.0, 0.25, 0.5, 0.75, 1.0] {
+        let _ = writeln!(
+            s,
+            r##"<line x1="{left}" x2="{0}" y1="{1}" y2="{1}" stroke="#ddd"/><text x="{2}" y="{3}" text-anchor="end">{p:.2}</text>"##,
+            w - right,
+            y(p),
+            left - 6.0,
+            y(p) + 4.0
+        );
+    }
+    let seconds = ((t1 - t0) / 1000.0).ceil() as usize;
+    let step = (seconds / 10).max(1);
+    for sec in (0..=seconds).step_by(step) {
+        let xx = x(t0 + sec as f64 * 1000.0);
+        let _ = writeln!(
+            s,
+            r#"<text x="{xx}" y="{}" text-anchor="middle">{sec} s</text>"#,
+            top + plot_h + 16.0
+        );
+    }
+    for (c, _) in classes.iter().enumerate() {
+        for (field, width, opacity) in [("raw", 1.0, 0.35), ("smoothed", 2.0, 1.0)] {
+            let mut d = String::new();
+            for r in &results {
+                let v = if field == "raw" { &r.raw } else { &r.smoothed };
+                if let Some(p) = v.get(c) {
+                    let _ = write!(
+                        d,
+                        "{}{:.1},{:.1} ",
+                        if d.is_empty() { "M" } else { "L" },
+                        x(r.t_ms),
+                        y(f64::from(*p))
+                    );
+                }
+            }
+            let _ = writeln!(
+                s,
+                r#"<path d="{d}" fill="none" stroke="{}" stroke-width="{width}" opacity="{opacity}"/>"#,
+                colour(c)
+            );
+        }
+    }
+    // Bands: label, then call.
+    for (row, name) in [(0, "label"), (1, "call")] {
+        let by = top + plot_h + 30.0 + row as f64 * (band_h + 8.0);
+        let _ = writeln!(
+            s,
+            r#"<text x="{}" y="{}" text-anchor="end">{name}</text>"#,
+            left - 6.0,
+            by + 15.0
+        );
+        for (i, r) in results.iter().enumerate() {
+            let value = if row == 0 {
+                r.label.as_deref()
+            } else {
+                r.decision.as_deref()
+            };
+            let Some(ci) = value.and_then(|v| classes.iter().position(|c| c == v)) else {
+                continue;
+            };
+            let next_t = results.get(i + 1).map_or(r.t_ms, |n| n.t_ms);
+            let _ = writeln!(
+                s,
+                r#"<rect x="{:.1}" y="{by}" width="{:.1}" height="{band_h}" fill="{}"/>"#,
+                x(r.t_ms),
+                (x(next_t) - x(r.t_ms)).max(0.5),
+                colour(ci)
+            );
+        }
+    }
+    let ly = top + plot_h + 100.0;
+    for (c, name) in classes.iter().enumerate() {
+        let lx = left + c as f64 * 150.0;
+        let _ = writeln!(
+            s,
+            r#"<rect x="{lx}" y="{ly}" width="14" height="14" fill="{}"/><text x="{}" y="{}">{}</text>"#,
+            colour(c),
+            lx + 20.0,
+            ly + 12.0,
+            escape(name)
+        );
+    }
+    let _ = writeln!(
+        s,
+        r##"<text x="{}" y="{}" fill="#555">faint: per-frame (raw); solid: smoothed; white in a band: undetermined</text>"##,
+        left,
+        ly + 36.0
+    );
+    let m = &header.model;
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {} ({})</text>"##,
+        h - 30.0,
+        escape(&m.name),
+        escape(&m.version),
+        escape(&m.sha256),
+        escape(&m.engine)
+    );
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
+        h - 12.0,
+        escape(CAUTION_SHORT)
+    );
+    s.push_str("</svg>\n");
+    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
+    Ok(path.to_path_buf())
+}
+
+/// End-to-end latency by percentile (x: percentile on a log scale of 1/(1-q), as latency work shows tails),
+/// with the caution and the model's identity in the footer.
+pub fn percentiles(
+    report: &crate::bench::BenchReport,
+    h: &hdrhistogram::Histogram<u64>,
+    path: &Path,
+) -> Result<PathBuf> {
+    let (w, hgt) = (900.0, 480.0);
+    let (left, right, top, plot_h) = (70.0, 30.0, 40.0, 340.0);
+    let qs: Vec<f64> = (0..=400)
+        .map(|i| 1.0 - 10f64.powf(-(i as f64) / 100.0))
+        .collect(); // 0 .. 99.99%
+    let values: Vec<f64> = qs
+        .iter()
+        .map(|&q| h.value_at_quantile(q) as f64 / 1000.0)
+        .collect();
+    let vmax = values.iter().copied().fold(1.0, f64::max) * 1.1;
+    let x = |i: usize| left + i as f64 / 400.0 * (w - left - right);
+    let y = |v: f64| top + (1.0 - v / vmax) * plot_h;
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{hgt}" font-family="sans-serif" font-size="12">"#
+    );
+    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let _ = writeln!(
+        s,
+        r#"<text x="{left}" y="22" font-size="15">End-to-end latency by percentile: {} sessions x {} fps, {}</text>"#,
+        report.sessions,
+        report.fps_per_session,
+        escape(&report.frame)
+    );
+    for (i, label) in [
+        (0, "0%"),
+        (100, "90%"),
+        (200, "99%"),
+        (300, "99.9%"),
+        (400, "99.99%"),
+    ] {
+        let _ = writeln!(
+            s,
+            r##"<line x1="{0}" x2="{0}" y1="{top}" y2="{1}" stroke="#ddd"/><text x="{0}" y="{2}" text-anchor="middle">{label}</text>"##,
+            x(i),
+            top + plot_h,
+            top + plot_h + 16.0
+        );
+    }
+    for k in 0..=4 {
+        let v = vmax * k as f64 / 4.0;
+        let _ = writeln!(
+            s,
+            r##"<line x1="{left}" x2="{0}" y1="{1}" y2="{1}" stroke="#eee"/><text x="{2}" y="{3}" text-anchor="end">{v:.1} ms</text>"##,
+            w - right,
+            y(v),
+            left - 6.0,
+            y(v) + 4.0
+        );
+    }
+    let d: String = values
+        .iter()
+        .enumerate()
+        .map(|(i, v)| {
+            format!(
+                "{}{:.1},{:.1} ",
+                if i == 0 { "M" } else { "L" },
+                x(i),
+                y(*v)
+            )
+        })
+        .collect();
+    let _ = writeln!(
+        s,
+        r#"<path d="{d}" fill="none" stroke="{}" stroke-width="2"/>"#,
+        PALETTE[0]
+    );
+    let model = &report.model;
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {}</text>"##,
+        hgt - 30.0,
+        escape(model["name"].as_str().unwrap_or("?")),
+        escape(model["version"].as_str().unwrap_or("?")),
+        escape(model["sha256"].as_str().unwrap_or("?"))
+    );
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
+        hgt - 12.0,
+        escape(CAUTION_SHORT)
+    );
+    s.push_str("</svg>\n");
+    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
+    Ok(path.to_path_buf())
+}
+
+/// The sweep's trade-off: median delay to a correct call against switches per minute, one point per filter.
+pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) -> Result<PathBuf> {
+    let (w, h) = (900.0, 520.0);
+    let (left, right, top, bottom) = (80.0, 40.0, 40.0, 90.0);
+    let xs: Vec<f64> = points
+        .iter()
+        .map(|p| p.decisions.median_time_to_correct_ms.unwrap_or(0.0))
+        .collect();
+    let ys: Vec<f64> = points
+        .iter()
+        .map(|p| p.decisions.switches_per_minute)
+        .collect();
+    let xmax = xs.iter().copied().fold(100.0, f64::max) * 1.1;
+    let ymax = ys.iter().copied().fold(1.0, f64::max) * 1.1;
+    let x = |v: f64| left + v / xmax * (w - left - right);
+    let y = |v: f64| top + (1.0 - v / ymax) * (h - top - bottom);
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
+    );
+    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let _ = writeln!(
+        s,
+        r#"<text x="{left}" y="22" font-size="15">Temporal filter sweep: delay against switches ({})</text>"#,
+        escape(&header.source)
+    );
+    for k in 0..=4 {
+        let (vx, vy) = (xmax * k as f64 / 4.0, ymax * k as f64 / 4.0);
+        let _ = writeln!(
+            s,
+            r##"<text x="{0}" y="{1}" text-anchor="middle">{vx:.0}</text><text x="{2}" y="{3}" text-anchor="end">{vy:.1}</text>"##,
+            x(vx),
+            h - bottom + 16.0,
+            left - 6.0,
+            y(vy) + 4.0
+        );
+    }
+    let _ = writeln!(
+        s,
+        r#"<text x="{}" y="{}" text-anchor="middle">median time to a correct call (ms)</text>"#,
+        (left + w - right) / 2.0,
+        h - bottom + 34.0
+    );
+    let _ = writeln!(
+        s,
+        r#"<text x="18" y="{}" transform="rotate(-90 18 {})" text-anchor="middle">call switches per minute</text>"#,
+        (top + h - bottom) / 2.0,
+        (top + h - bottom) / 2.0
+    );
+    for (i, p) in points.iter().enumerate() {
+        let family = p.filter.split(':').next().unwrap_or("");
+        let c = match family {
+            "exp" => PALETTE[0],
+            "window" => PALETTE[1],
+            "forward" => PALETTE[2],
+            _ => PALETTE[3],
+        };
+        let _ = writeln!(
+            s,
+            r#"<circle cx="{:.1}" cy="{:.1}" r="5" fill="{c}"/><text x="{:.1}" y="{:.1}" font-size="10">{}</text>"#,
+            x(xs[i]),
+            y(ys[i]),
+            x(xs[i]) + 7.0,
+            y(ys[i]) - 4.0,
+            escape(&p.filter)
+        );
+    }
+    let m = &header.model;
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {}</text>"##,
+        h - 30.0,
+        escape(&m.name),
+        escape(&m.version),
+        escape(&m.sha256)
+    );
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
+        h - 12.0,
+        escape(CAUTION_SHORT)
+    );
+    s.push_str("</svg>\n");
+    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
+    Ok(path.to_path_buf())
+}
