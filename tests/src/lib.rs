@@ -1,0 +1,137 @@
+//! Shared helpers for framewise's integration tests: the workspace root, the embedded demo model, the
+//! reference fixtures made by `tests/reference/make_fixtures.py` (onnxruntime, OpenCV, SciPy), and a
+//! server started on a free loopback port.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::{Arc, OnceLock};
+
+use framewise_engine::{Model, ModelPackage};
+
+/// The seeded generator the tests draw random frames from.
+pub use framewise_models_demo::rng::SplitMix64 as Rng;
+
+/// The workspace root.
+pub fn workspace_root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .parent()
+        .map(Path::to_path_buf)
+        .unwrap_or_default()
+}
+
+/// The Python interpreter with the pinned reference packages: `FRAMEWISE_PYTHON`, else the workspace's
+/// `.venv`.
+pub fn python() -> PathBuf {
+    match std::env::var_os("FRAMEWISE_PYTHON") {
+        Some(p) => PathBuf::from(p),
+        None => workspace_root().join(".venv/bin/python"),
+    }
+}
+
+/// The embedded demo model, loaded once.
+pub fn demo_model() -> Arc<Model> {
+    static MODEL: OnceLock<Arc<Model>> = OnceLock::new();
+    MODEL
+        .get_or_init(|| {
+            let package = ModelPackage::from_parts(
+                framewise_models_demo::package::DEMO_MANIFEST,
+                framewise_models_demo::package::DEMO_ONNX,
+            )
+            .expect("the embedded demo package parses");
+            Arc::new(Model::load(&package, None).expect("the embedded demo model loads"))
+        })
+        .clone()
+}
+
+/// The reference fixtures folder: `FRAMEWISE_FIXTURES` if set, else made once under `target/` by running
+/// `tests/reference/make_fixtures.py` with [`python`].
+pub fn fixtures() -> PathBuf {
+    static DIR: OnceLock<PathBuf> = OnceLock::new();
+    DIR.get_or_init(|| {
+        if let Some(dir) = std::env::var_os("FRAMEWISE_FIXTURES") {
+            return PathBuf::from(dir);
+        }
+        let dir = workspace_root().join("target/reference-fixtures");
+        if dir.join("index.json").exists() && fixtures_fresh(&dir) {
+            return dir;
+        }
+        let script = workspace_root().join("tests/reference/make_fixtures.py");
+        let status = Command::new(python())
+            .arg(&script)
+            .arg("--out")
+            .arg(&dir)
+            .status()
+            .unwrap_or_else(|e| {
+                panic!(
+                    "the reference checks need Python with the pinned packages ({}): {e}; run `bash tests/run-all` once",
+                    python().display()
+                )
+            });
+        assert!(status.success(), "{} failed; run `bash tests/run-all` to set up the venv", script.display());
+        dir
+    })
+    .clone()
+}
+
+/// Fixtures are fresh when they are newer than the demo model and the scripts that make them.
+fn fixtures_fresh(dir: &Path) -> bool {
+    let modified = |p: &Path| std::fs::metadata(p).and_then(|m| m.modified()).ok();
+    let Some(made) = modified(&dir.join("index.json")) else {
+        return false;
+    };
+    let root = workspace_root();
+    [
+        "models-demo/package/phantom-zones.onnx",
+        "models-demo/package/manifest.toml",
+        "models-demo/scripts/make_bench_model.py",
+        "tests/reference/make_fixtures.py",
+    ]
+    .iter()
+    .all(|f| modified(&root.join(f)).is_some_and(|m| m <= made))
+}
+
+/// Reads a raw little-endian array file from the fixtures.
+pub fn read_bytes(name: &str) -> Vec<u8> {
+    let path = fixtures().join(name);
+    std::fs::read(&path).unwrap_or_else(|e| panic!("reading fixture {}: {e}", path.display()))
+}
+
+/// Reads a float32 array file from the fixtures.
+pub fn read_f32(name: &str) -> Vec<f32> {
+    read_bytes(name)
+        .chunks_exact(4)
+        .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+        .collect()
+}
+
+/// The fixtures' index.
+pub fn index() -> serde_json::Value {
+    let path = fixtures().join("index.json");
+    let text = std::fs::read_to_string(&path)
+        .unwrap_or_else(|e| panic!("reading {}: {e}", path.display()));
+    serde_json::from_str(&text).unwrap_or_else(|e| panic!("parsing {}: {e}", path.display()))
+}
+
+/// Largest absolute difference between two byte arrays, and how many bytes differ.
+pub fn byte_diff(a: &[u8], b: &[u8]) -> (u8, usize) {
+    assert_eq!(a.len(), b.len(), "lengths differ");
+    a.iter().zip(b).fold((0u8, 0usize), |(m, n), (x, y)| {
+        let d = x.abs_diff(*y);
+        (m.max(d), n + usize::from(d > 0))
+    })
+}
+
+/// Largest absolute difference between two float arrays.
+pub fn max_abs_diff(a: &[f32], b: &[f64]) -> f64 {
+    assert_eq!(
+        a.len(),
+        b.len(),
+        "lengths differ: {} vs {}",
+        a.len(),
+        b.len()
+    );
+    a.iter()
+        .zip(b)
+        .map(|(x, y)| (f64::from(*x) - y).abs())
+        .fold(0.0, f64::max)
+}

@@ -1,0 +1,581 @@
+//! The real server on a free loopback port: sessions, frame policies, errors, limits, cautions.
+
+use std::time::Duration;
+
+use framewise_engine::{Analyser, CAUTION, FrameRef, PixelFormat};
+use framewise_proto::v1 as pb;
+use framewise_server::{ModelRegistry, ServerConfig};
+use framewise_tests::{Rng, demo_model};
+use pb::frame_analysis_client::FrameAnalysisClient;
+use tokio::sync::mpsc;
+use tokio_stream::wrappers::ReceiverStream;
+use tonic::transport::Channel;
+
+struct TestServer {
+    server: framewise_server::RunningServer,
+    url: String,
+}
+
+async fn start(config: ServerConfig) -> TestServer {
+    let config = ServerConfig {
+        listen: "127.0.0.1:0".parse().expect("addr"),
+        ..config
+    };
+    let registry = ModelRegistry::new(vec![demo_model()]);
+    let server = framewise_server::start(config, Some(registry))
+        .await
+        .expect("server starts");
+    let url = format!("http://{}", server.addr);
+    TestServer { server, url }
+}
+
+async fn client(url: &str) -> FrameAnalysisClient<Channel> {
+    FrameAnalysisClient::connect(url.to_string())
+        .await
+        .expect("connects")
+        .max_decoding_message_size(64 << 20)
+        .max_encoding_message_size(64 << 20)
+}
+
+fn opening(policy: pb::FramePolicy) -> pb::SessionOpening {
+    pb::SessionOpening {
+        policy: policy as i32,
+        ..Default::default()
+    }
+}
+
+fn frame_msg(
+    seq: u64,
+    t_us: i64,
+    format: PixelFormat,
+    w: u32,
+    h: u32,
+    data: Vec<u8>,
+) -> pb::SessionInput {
+    pb::SessionInput {
+        item: Some(pb::session_input::Item::Frame(pb::Frame {
+            seq,
+            capture_time_us: t_us,
+            format: framewise_server::convert::wire_format(format) as i32,
+            width: w,
+            height: h,
+            stride: 0,
+            data,
+        })),
+    }
+}
+
+fn noise_frame(rng: &mut Rng, w: u32, h: u32) -> Vec<u8> {
+    (0..w * h * 3).map(|_| rng.below(256) as u8).collect()
+}
+
+/// Opens a session, sends `inputs` (after the opening) and collects every output until the stream ends.
+async fn converse(
+    url: &str,
+    opening: pb::SessionOpening,
+    inputs: Vec<pb::SessionInput>,
+) -> Result<Vec<pb::SessionOutput>, tonic::Status> {
+    let mut grpc = client(url).await;
+    let (tx, rx) = mpsc::channel(8);
+    tx.send(pb::SessionInput {
+        item: Some(pb::session_input::Item::Opening(opening)),
+    })
+    .await
+    .expect("queue opening");
+    let sender = tokio::spawn(async move {
+        for input in inputs {
+            if tx.send(input).await.is_err() {
+                break;
+            }
+        }
+    });
+    let mut answers = grpc.converse(ReceiverStream::new(rx)).await?.into_inner();
+    let mut out = Vec::new();
+    while let Some(m) = answers.message().await? {
+        out.push(m);
+    }
+    let _ = sender.await;
+    Ok(out)
+}
+
+fn answers(outputs: &[pb::SessionOutput]) -> Vec<&pb::Answer> {
+    outputs
+        .iter()
+        .filter_map(|o| match &o.item {
+            Some(pb::session_output::Item::Answer(a)) => Some(a),
+            _ => None,
+        })
+        .collect()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_frame_answers_each_of_1000_frames_once_in_order_with_the_caution() {
+    let t = start(ServerConfig::default()).await;
+    let mut rng = Rng::new(1);
+    let inputs = (0..1000u64)
+        .map(|i| {
+            frame_msg(
+                i,
+                1_000_000 + i as i64 * 33_333,
+                PixelFormat::Rgb8,
+                32,
+                24,
+                noise_frame(&mut rng, 32, 24),
+            )
+        })
+        .collect();
+    let outputs = converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
+        .await
+        .expect("session runs");
+    let Some(pb::session_output::Item::Accepted(accepted)) = &outputs[0].item else {
+        panic!("first output is not SessionAccepted")
+    };
+    assert_eq!(accepted.caution, CAUTION);
+    assert_eq!(accepted.classes, demo_model().classes());
+    let answers = answers(&outputs);
+    let seqs: Vec<u64> = answers.iter().map(|a| a.seq).collect();
+    assert_eq!(
+        seqs,
+        (0..1000).collect::<Vec<_>>(),
+        "every sequence number once, in order"
+    );
+    for a in &answers {
+        assert_eq!(a.caution, CAUTION, "caution in every answer");
+        assert!(
+            matches!(a.outcome, Some(pb::answer::Outcome::Result(_))),
+            "frame {} has a result",
+            a.seq
+        );
+        assert_eq!(
+            a.model.as_ref().map(|m| m.sha256.as_str()),
+            Some(demo_model().identity().sha256.as_str())
+        );
+    }
+    let Some(pb::session_output::Item::Summary(summary)) = &outputs.last().expect("outputs").item
+    else {
+        panic!("no summary")
+    };
+    assert_eq!(
+        (summary.frames, summary.results, summary.errors),
+        (1000, 1000, 0)
+    );
+    assert_eq!(summary.caution, CAUTION);
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn streamed_results_equal_the_offline_engine_bit_for_bit() {
+    // Property over random frame sequences (seeded): formats, sizes, timestamps with jitter and gaps.
+    let t = start(ServerConfig::default()).await;
+    for seed in 0..4u64 {
+        let mut rng = Rng::new(100 + seed);
+        let (w, h) = (
+            2 * (8 + rng.below(60) as u32),
+            2 * (8 + rng.below(40) as u32),
+        );
+        let mut frames = Vec::new();
+        let mut t_us = 1_000_000i64;
+        for seq in 0..40u64 {
+            t_us += 20_000 + rng.below(40_000) as i64;
+            let format = [
+                PixelFormat::Rgb8,
+                PixelFormat::Bgr8,
+                PixelFormat::Nv12,
+                PixelFormat::Gray8,
+            ][rng.below(4) as usize];
+            let len = match format {
+                PixelFormat::Rgb8 | PixelFormat::Bgr8 => w * h * 3,
+                PixelFormat::Nv12 => w * h * 3 / 2,
+                _ => w * h,
+            };
+            let data: Vec<u8> = (0..len).map(|_| rng.below(256) as u8).collect();
+            frames.push((seq, t_us, format, data));
+        }
+        let filter = match seed % 3 {
+            0 => pb::filter_settings::Kind::Exponential(pb::Exponential { tau_ms: 150.0 }),
+            1 => pb::filter_settings::Kind::Window(pb::Window {
+                frames: 5,
+                span_ms: 0.0,
+            }),
+            _ => pb::filter_settings::Kind::Forward(pb::Forward {
+                stay: vec![0.95],
+                priors: vec![],
+                step_ms: 0.0,
+            }),
+        };
+        let opening = pb::SessionOpening {
+            filter: Some(pb::FilterSettings { kind: Some(filter) }),
+            decision: Some(pb::DecisionSettings {
+                enter: 0.5,
+                exit: 0.3,
+                dwell_ms: 100.0,
+            }),
+            ..opening(pb::FramePolicy::EveryFrame)
+        };
+        let inputs = frames
+            .iter()
+            .map(|(s, t, f, d)| frame_msg(*s, *t, *f, w, h, d.clone()))
+            .collect();
+        let outputs = converse(&t.url, opening.clone(), inputs)
+            .await
+            .expect("session runs");
+        let model = demo_model();
+        let plan = framewise_server::convert::session_plan(&opening, &model, Default::default())
+            .expect("valid");
+        let mut offline = Analyser::new(model.clone(), &plan.settings).expect("valid");
+        for (a, (seq, t_us, format, data)) in answers(&outputs).iter().zip(&frames) {
+            assert_eq!(a.seq, *seq);
+            let frame = FrameRef {
+                format: *format,
+                width: w,
+                height: h,
+                stride: 0,
+                data,
+            };
+            let expected = offline
+                .analyse(&frame, *t_us as f64 / 1000.0)
+                .expect("offline analyses");
+            let Some(pb::answer::Outcome::Result(r)) = &a.outcome else {
+                panic!("frame {seq}: no result")
+            };
+            // Reference: the offline engine on the same frames; the server must not change a single bit.
+            assert_eq!(r.raw, expected.analysed.raw, "seed {seed} frame {seq}: raw");
+            assert_eq!(
+                r.smoothed, expected.smoothed.smoothed,
+                "seed {seed} frame {seq}: smoothed"
+            );
+            let d = r.decision.clone().unwrap_or_default();
+            let expected_decision = match expected.smoothed.decision {
+                framewise_engine::Decision::Undetermined => None,
+                framewise_engine::Decision::Class { index, confidence } => {
+                    Some((index as u32, confidence))
+                }
+            };
+            assert_eq!(
+                d.determined.then_some((d.class_index, d.confidence)),
+                expected_decision,
+                "seed {seed} frame {seq}: decision"
+            );
+        }
+    }
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn bad_frames_get_error_answers_and_the_session_goes_on() {
+    let t = start(ServerConfig::default()).await;
+    let mut rng = Rng::new(7);
+    let good =
+        |rng: &mut Rng, seq| frame_msg(seq, 0, PixelFormat::Rgb8, 16, 16, noise_frame(rng, 16, 16));
+    let inputs = vec![
+        good(&mut rng, 0),
+        frame_msg(
+            1,
+            0,
+            PixelFormat::Nv12,
+            1920,
+            1080,
+            vec![0; 1920 * 1080 * 3 / 2 - 1],
+        ),
+        frame_msg(2, 0, PixelFormat::I420, 5, 4, vec![0; 30]),
+        frame_msg(
+            3,
+            0,
+            PixelFormat::Png,
+            0,
+            0,
+            b"\x89PNG\r\n\x1a\nnot really".to_vec(),
+        ),
+        frame_msg(4, 0, PixelFormat::Rgb8, 100_000, 100_000, vec![]),
+        pb::SessionInput {
+            item: Some(pb::session_input::Item::Frame(pb::Frame {
+                seq: 5,
+                format: 99,
+                ..Default::default()
+            })),
+        },
+        good(&mut rng, 6),
+    ];
+    let outputs = converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
+        .await
+        .expect("session runs");
+    let answers = answers(&outputs);
+    let kinds: Vec<String> = answers
+        .iter()
+        .map(|a| match &a.outcome {
+            Some(pb::answer::Outcome::Result(_)) => "result".to_string(),
+            Some(pb::answer::Outcome::Error(e)) => e.kind.clone(),
+            other => format!("{other:?}"),
+        })
+        .collect();
+    assert_eq!(
+        kinds,
+        [
+            "result",
+            "bad_length",
+            "odd_dimension",
+            "decode_failed",
+            "too_large",
+            "bad_format",
+            "result"
+        ]
+    );
+    let Some(pb::answer::Outcome::Error(e)) = &answers[1].outcome else {
+        panic!("no error")
+    };
+    assert_eq!(
+        e.message,
+        "frame 1: nv12 buffer is 3110399 bytes, expected 3110400 for 1920x1080 with stride 1920"
+    );
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn latest_only_answers_every_frame_as_result_or_skipped() {
+    // One worker and large PNG frames sent back to back: the server falls behind and must skip.
+    let t = start(ServerConfig {
+        workers: 1,
+        ..Default::default()
+    })
+    .await;
+    let mut rng = Rng::new(9);
+    let (w, h) = (1280u32, 720u32);
+    let pixels = noise_frame(&mut rng, w, h);
+    let mut png = Vec::new();
+    image_png(&pixels, w, h, &mut png);
+    let inputs = (0..60u64)
+        .map(|i| {
+            frame_msg(
+                i,
+                1_000_000 + i as i64 * 1000,
+                PixelFormat::Png,
+                0,
+                0,
+                png.clone(),
+            )
+        })
+        .collect();
+    let outputs = converse(&t.url, opening(pb::FramePolicy::LatestOnly), inputs)
+        .await
+        .expect("session runs");
+    let answers = answers(&outputs);
+    let mut seen: Vec<u64> = answers.iter().map(|a| a.seq).collect();
+    seen.sort();
+    assert_eq!(
+        seen,
+        (0..60).collect::<Vec<_>>(),
+        "every frame answered exactly once"
+    );
+    let skipped: Vec<(u64, u64)> = answers
+        .iter()
+        .filter_map(|a| match &a.outcome {
+            Some(pb::answer::Outcome::Skipped(s)) => Some((a.seq, s.overtaken_by)),
+            _ => None,
+        })
+        .collect();
+    assert!(
+        !skipped.is_empty(),
+        "a server that falls behind skips frames in latest-only mode"
+    );
+    assert!(
+        skipped.iter().all(|(seq, by)| by > seq),
+        "a frame is overtaken only by a newer one"
+    );
+    let last = answers
+        .iter()
+        .find(|a| a.seq == 59)
+        .expect("last frame answered");
+    assert!(
+        matches!(last.outcome, Some(pb::answer::Outcome::Result(_))),
+        "the newest frame is analysed"
+    );
+    let Some(pb::session_output::Item::Summary(summary)) = &outputs.last().expect("outputs").item
+    else {
+        panic!("no summary")
+    };
+    assert_eq!(summary.results + summary.skipped, 60);
+    t.server.stop().await.expect("stops");
+}
+
+fn image_png(rgb: &[u8], w: u32, h: u32, out: &mut Vec<u8>) {
+    use image::ImageEncoder;
+    image::codecs::png::PngEncoder::new(out)
+        .write_image(rgb, w, h, image::ExtendedColorType::Rgb8)
+        .expect("png encodes");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn sixteen_concurrent_sessions_complete() {
+    let t = start(ServerConfig::default()).await;
+    let mut tasks = Vec::new();
+    for s in 0..16u64 {
+        let url = t.url.clone();
+        tasks.push(tokio::spawn(async move {
+            let mut rng = Rng::new(500 + s);
+            let inputs = (0..30u64)
+                .map(|i| {
+                    frame_msg(
+                        i,
+                        0,
+                        PixelFormat::Rgb8,
+                        48,
+                        32,
+                        noise_frame(&mut rng, 48, 32),
+                    )
+                })
+                .collect();
+            converse(&url, opening(pb::FramePolicy::EveryFrame), inputs).await
+        }));
+    }
+    for task in tasks {
+        let outputs = task.await.expect("task").expect("session");
+        assert_eq!(answers(&outputs).len(), 30);
+    }
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn openings_are_checked_and_limits_hold() {
+    let t = start(ServerConfig {
+        max_sessions: 1,
+        ..Default::default()
+    })
+    .await;
+    // A session that stays open holds the only place.
+    let mut grpc = client(&t.url).await;
+    let (tx, rx) = mpsc::channel(4);
+    tx.send(pb::SessionInput {
+        item: Some(pb::session_input::Item::Opening(opening(
+            pb::FramePolicy::EveryFrame,
+        ))),
+    })
+    .await
+    .expect("queue");
+    let mut held = grpc
+        .converse(ReceiverStream::new(rx))
+        .await
+        .expect("first session opens")
+        .into_inner();
+    assert!(held.message().await.expect("accepted").is_some());
+    let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
+        .await
+        .expect_err("second session refused");
+    assert_eq!(err.code(), tonic::Code::ResourceExhausted);
+    drop(tx);
+    while held.message().await.expect("summary").is_some() {}
+    tokio::time::sleep(Duration::from_millis(50)).await;
+
+    let bad_model = pb::SessionOpening {
+        model: "no-such-model".into(),
+        ..Default::default()
+    };
+    let err = converse(&t.url, bad_model, vec![])
+        .await
+        .expect_err("unknown model");
+    assert_eq!(err.code(), tonic::Code::NotFound);
+    assert!(err.message().contains("`model`"), "{}", err.message());
+
+    let bad_tau = pb::SessionOpening {
+        filter: Some(pb::FilterSettings {
+            kind: Some(pb::filter_settings::Kind::Exponential(pb::Exponential {
+                tau_ms: 0.0,
+            })),
+        }),
+        ..Default::default()
+    };
+    let err = converse(&t.url, bad_tau, vec![]).await.expect_err("tau 0");
+    assert_eq!(err.code(), tonic::Code::InvalidArgument);
+    assert!(
+        err.message().contains("exponential.tau_ms"),
+        "{}",
+        err.message()
+    );
+
+    let bad_enter = pb::SessionOpening {
+        decision: Some(pb::DecisionSettings {
+            enter: 1.5,
+            exit: 0.2,
+            dwell_ms: 0.0,
+        }),
+        ..Default::default()
+    };
+    let err = converse(&t.url, bad_enter, vec![])
+        .await
+        .expect_err("enter above 1");
+    assert_eq!(err.code(), tonic::Code::InvalidArgument);
+    assert!(
+        err.message().contains("decision.enter"),
+        "{}",
+        err.message()
+    );
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_token_is_required_when_set() {
+    let token = "a-long-enough-test-token".to_string();
+    let t = start(ServerConfig {
+        token: Some(token.clone()),
+        ..Default::default()
+    })
+    .await;
+    let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
+        .await
+        .expect_err("no token");
+    assert_eq!(err.code(), tonic::Code::Unauthenticated);
+    let mut grpc = client(&t.url).await;
+    let mut request = tonic::Request::new(pb::ListModelsRequest {});
+    request.metadata_mut().insert(
+        "authorization",
+        "Bearer wrong-token-of-some-length".parse().expect("header"),
+    );
+    assert_eq!(
+        grpc.list_models(request)
+            .await
+            .expect_err("wrong token")
+            .code(),
+        tonic::Code::Unauthenticated
+    );
+    let mut request = tonic::Request::new(pb::ListModelsRequest {});
+    request.metadata_mut().insert(
+        "authorization",
+        format!("Bearer {token}").parse().expect("header"),
+    );
+    let reply = grpc
+        .list_models(request)
+        .await
+        .expect("right token")
+        .into_inner();
+    assert_eq!(reply.models.len(), 1);
+    assert_eq!(reply.caution, CAUTION);
+    assert_eq!(
+        t.server.stats.snapshot().frames,
+        0,
+        "no frame was processed without the token"
+    );
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn python_clients_use_the_contract_and_the_health_protocol() {
+    // Reference clients: grpcio with stubs generated from our .proto by grpcio-tools, and the
+    // grpcio-health-checking package's standard health client.
+    let t = start(ServerConfig::default()).await;
+    let script = framewise_tests::workspace_root().join("tests/reference/py_client.py");
+    let output = tokio::process::Command::new(framewise_tests::python())
+        .arg(&script)
+        .arg("--target")
+        .arg(t.server.addr.to_string())
+        .output()
+        .await
+        .expect("python runs");
+    let stdout = String::from_utf8_lossy(&output.stdout);
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(
+        output.status.success(),
+        "python client failed:\n{stdout}\n{stderr}"
+    );
+    assert!(stdout.contains("health: SERVING"), "{stdout}");
+    assert!(stdout.contains("answers: 5"), "{stdout}");
+    t.server.stop().await.expect("stops");
+}

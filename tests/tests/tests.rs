@@ -1,0 +1,8 @@
+//! framewise's workspace integration tests, in one binary with topical modules.
+//!
+//! The reference checks compare against fixtures made by `tests/reference/make_fixtures.py` from
+//! onnxruntime, OpenCV, SciPy and NumPy; the helper in `framewise_tests` makes them on first use.
+
+mod cli;
+mod reference;
+mod server;
