@@ -192,10 +192,7 @@ fn live_line(r: &FrameRecord, n: usize, total: usize) -> String {
     )
 }
 
-/// Index and value of the largest probability.
+/// Index and value of the largest probability (the first on ties).
 pub fn argmax(p: &[f32]) -> Option<(usize, f32)> {
-    p.iter()
-        .copied()
-        .enumerate()
-        .max_by(|a, b| a.1.total_cmp(&b.1))
+    framewise_engine::scoring::argmax(p).map(|i| (i, p[i]))
 }

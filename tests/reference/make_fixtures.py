@@ -339,7 +339,12 @@ def percentile_cases(seed):
     rng = np.random.default_rng(seed)
     x = np.rint(rng.lognormal(np.log(4000), 0.6, 20000)).astype(np.int64)
     qs = [50, 90, 99, 99.9, 100]
-    return {"samples": x.tolist(), "q": qs, "expected": [float(np.percentile(x, q, method="inverted_cdf")) for q in qs]}
+    xs = np.sort(x)
+    ranks = [min(max(int(np.ceil(q / 100 * len(x))), 1), len(x)) for q in qs]
+    # The samples one rank below and above, for libraries that round the rank differently.
+    around = [[int(xs[max(r - 2, 0)]), int(xs[min(r, len(x) - 1)])] for r in ranks]
+    return {"samples": x.tolist(), "q": qs, "around": around,
+            "expected": [float(np.percentile(x, q, method="inverted_cdf")) for q in qs]}
 
 
 def y4m_cases(w, seed):

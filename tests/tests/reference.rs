@@ -259,6 +259,20 @@ fn resizing_matches_opencv() {
             let prepared = pre.prepare(&spec_for(tw, th, interpolation), &rgb, &mut tensor);
             let expected = read_bytes(case[name].as_str().expect("file"));
             let (max, count) = byte_diff(prepared.picture, &expected);
+            let mean = prepared
+                .picture
+                .iter()
+                .zip(&expected)
+                .map(|(a, b)| f64::from(a.abs_diff(*b)))
+                .sum::<f64>()
+                / expected.len() as f64;
+            let mean = prepared
+                .picture
+                .iter()
+                .zip(&expected)
+                .map(|(a, b)| f64::from(a.abs_diff(*b)))
+                .sum::<f64>()
+                / expected.len() as f64;
             let whole = w % tw == 0 && h % th == 0;
             let down = tw <= w && th <= h;
             // Reference: cv2.resize with INTER_LINEAR / INTER_AREA.
@@ -267,17 +281,22 @@ fn resizing_matches_opencv() {
                 ("bilinear", _, _) => 1,
                 // Box averaging equals INTER_AREA at whole-number factors, within 1 level of rounding.
                 ("area", true, _) => 1,
-                // Fractional downscales: OpenCV weighs partial source pixels by their covered area, the box
-                // filter by its kernel; measured here at most 12 levels, mean well under 1.
-                ("area", false, true) => 12,
-                // Upscaling: OpenCV's INTER_AREA becomes bilinear; the box filter is nearest-like. Only
-                // reported, never used by the demo model.
+                // Fractional downscales: the same area weights as OpenCV, summed in another order.
+                ("area", false, true) => 1,
+                // Enlarging: OpenCV's INTER_AREA becomes bilinear-like, ours a box filter. Only reported:
+                // measured up to 54 levels (97x61 to 224x224); a classifier's input is rarely enlarged.
                 _ => 255,
             };
             report.push(format!(
-                "{w}x{h} -> {tw}x{th} {name}: max {max}, {count} of {} bytes differ",
+                "{w}x{h} -> {tw}x{th} {name}: max {max}, mean {mean:.3}, {count} of {} bytes differ",
                 expected.len()
             ));
+            if !(name == "area" && !down) {
+                assert!(
+                    mean < 0.5,
+                    "{w}x{h} -> {tw}x{th} {name}: mean difference {mean}"
+                );
+            }
             assert!(
                 max <= limit,
                 "{w}x{h} -> {tw}x{th} {name}: max {max} > {limit}"
@@ -307,7 +326,12 @@ fn focus_measure_matches_opencv_laplacian_variance() {
     let mut ours = Vec::new();
     luma_of(&read_bytes(luma["rgb"].as_str().expect("rgb")), &mut ours);
     // Reference: cv2.cvtColor(COLOR_RGB2GRAY).
-    assert_eq!(ours, read_bytes(luma["gray"].as_str().expect("gray")));
+    let (max, count) = byte_diff(&ours, &read_bytes(luma["gray"].as_str().expect("gray")));
+    assert_eq!(
+        (max, count),
+        (0, 0),
+        "luma differs from OpenCV in {count} pixels, by up to {max}"
+    );
 }
 
 #[test]

@@ -445,11 +445,7 @@ impl Decider {
             self.held = None;
             self.candidate = None;
         }
-        let best = smoothed
-            .iter()
-            .enumerate()
-            .max_by(|a, b| a.1.total_cmp(b.1))
-            .map(|(i, &p)| (i, f64::from(p)));
+        let best = crate::scoring::argmax(smoothed).map(|i| (i, f64::from(smoothed[i])));
         match best {
             Some((index, p)) if p >= self.spec.enter => {
                 let since = match self.candidate {

@@ -334,7 +334,7 @@ impl RgbImage {
 pub struct DecodeScratch {
     aligned: RgbImage,
     decoded: Vec<u8>,
-    chroma: Vec<u8>,
+    planes: YuvPlanes,
 }
 
 impl<'a> FrameRef<'a> {
@@ -492,7 +492,7 @@ pub fn to_rgb(
         let DecodeScratch {
             decoded,
             aligned,
-            chroma,
+            planes,
         } = scratch;
         let (width, height) = decode_file(frame.format, frame.data, limits, decoded)?;
         let region = checked_region(region, width, height)?;
@@ -503,7 +503,7 @@ pub fn to_rgb(
             stride: width as usize * 3,
             data: decoded,
         };
-        return convert_region(&packed, region, yuv_spec, aligned, chroma, out);
+        return convert_region(&packed, region, yuv_spec, aligned, planes, out);
     }
     let checked = frame.check(limits)?;
     let region = checked_region(region, checked.width, checked.height)?;
@@ -512,7 +512,7 @@ pub fn to_rgb(
         region,
         yuv_spec,
         &mut scratch.aligned,
-        &mut scratch.chroma,
+        &mut scratch.planes,
         out,
     )
 }
@@ -534,7 +534,7 @@ fn convert_region(
     region: Region,
     yuv_spec: YuvSpec,
     aligned: &mut RgbImage,
-    chroma: &mut Vec<u8>,
+    planes: &mut YuvPlanes,
     out: &mut RgbImage,
 ) -> Result<(), FrameError> {
     let (sx, sy) = frame.format.chroma_steps();
@@ -556,10 +556,10 @@ fn convert_region(
     };
     if wide == region {
         out.reset(region.width, region.height);
-        return convert_yuv(frame, region, yuv_spec, chroma, out);
+        return convert_yuv(frame, region, yuv_spec, planes, out);
     }
     aligned.reset(wide.width, wide.height);
-    convert_yuv(frame, wide, yuv_spec, chroma, aligned)?;
+    convert_yuv(frame, wide, yuv_spec, planes, aligned)?;
     out.reset(region.width, region.height);
     let (dx, dy) = ((region.x - x0) as usize, (region.y - y0) as usize);
     let src_row = wide.width as usize * 3;
@@ -811,34 +811,39 @@ fn convert_yuv(
     frame: &Checked<'_>,
     region: Region,
     spec: YuvSpec,
-    chroma: &mut Vec<u8>,
+    planes: &mut YuvPlanes,
     out: &mut RgbImage,
 ) -> Result<(), FrameError> {
     let (range, matrix) = yuv_params(spec);
     let (x, y) = (region.x as usize, region.y as usize);
+    let (w, h) = (region.width as usize, region.height as usize);
     let stride = frame.stride;
-    let h = frame.height as usize;
+    let frame_h = frame.height as usize;
     let rgb_stride = region.width * 3;
     let fail = |e: yuv::YuvError| FrameError::ConversionFailed {
         format: frame.format,
         reason: e.to_string(),
     };
+    // yuvutils-rs wants each plane as an exact, tightly packed slice for some layouts and walks rows in
+    // pairs for others, so the region's rows are copied into packed planes (less than a third of the
+    // conversion's cost) unless the frame already is exactly that.
+    let whole = region == Region::whole(frame.width, frame.height);
     match frame.format {
         PixelFormat::Nv12 => {
-            let (y_plane, uv_plane) = frame.data.split_at(stride * h);
-            // yuvutils-rs wants the interleaved chroma tightly packed: copy the region's rows (a quarter of
-            // the luma's size).
-            let row = region.width as usize;
-            chroma.clear();
-            for r in 0..region.height as usize / 2 {
-                let start = (y / 2 + r) * stride + x;
-                chroma.extend_from_slice(&uv_plane[start..start + row]);
-            }
+            let (y_plane, uv_plane) = frame.data.split_at(stride * frame_h);
+            let (luma, chroma): (&[u8], &[u8]) =
+                if whole && stride == w && uv_plane.len() == w * h / 2 {
+                    (y_plane, uv_plane)
+                } else {
+                    repack(y_plane, stride, x, y, w, h, &mut planes.y);
+                    repack(uv_plane, stride, x, y / 2, w, h / 2, &mut planes.u);
+                    (&planes.y, &planes.u)
+                };
             let image = yuv::YuvBiPlanarImage {
-                y_plane: &y_plane[y * stride + x..],
-                y_stride: stride as u32,
+                y_plane: luma,
+                y_stride: w as u32,
                 uv_plane: chroma,
-                uv_stride: row as u32,
+                uv_stride: w as u32,
                 width: region.width,
                 height: region.height,
             };
@@ -854,30 +859,65 @@ fn convert_yuv(
         }
         PixelFormat::I420 => {
             let c = stride / 2;
-            let (y_plane, rest) = frame.data.split_at(stride * h);
-            let (u_plane, v_plane) = rest.split_at(c * (h / 2));
+            let (y_plane, rest) = frame.data.split_at(stride * frame_h);
+            let (u_plane, v_plane) = rest.split_at((c * (frame_h / 2)).min(rest.len()));
+            repack(y_plane, stride, x, y, w, h, &mut planes.y);
+            repack(u_plane, c, x / 2, y / 2, w / 2, h / 2, &mut planes.u);
+            repack(v_plane, c, x / 2, y / 2, w / 2, h / 2, &mut planes.v);
             let image = yuv::YuvPlanarImage {
-                y_plane: &y_plane[y * stride + x..],
-                y_stride: stride as u32,
-                u_plane: &u_plane[(y / 2) * c + x / 2..],
-                u_stride: c as u32,
-                v_plane: &v_plane[(y / 2) * c + x / 2..],
-                v_stride: c as u32,
+                y_plane: &planes.y,
+                y_stride: w as u32,
+                u_plane: &planes.u,
+                u_stride: (w / 2) as u32,
+                v_plane: &planes.v,
+                v_stride: (w / 2) as u32,
                 width: region.width,
                 height: region.height,
             };
             yuv::yuv420_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
         }
         _ => {
+            let packed: &[u8] = if whole && stride == 2 * w && frame.data.len() == 2 * w * h {
+                frame.data
+            } else {
+                repack(frame.data, stride, 2 * x, y, 2 * w, h, &mut planes.y);
+                &planes.y
+            };
             let image = yuv::YuvPackedImage {
-                yuy: &frame.data[y * stride + x * 2..],
-                yuy_stride: stride as u32,
+                yuy: packed,
+                yuy_stride: 2 * w as u32,
                 width: region.width,
                 height: region.height,
             };
             yuv::yuyv422_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
         }
     }
+}
+
+/// Copies `rows` rows of `row_bytes` bytes, starting at byte `x` of row `y` of a plane with `stride`, into
+/// `out` tightly packed. The caller has checked that the plane holds them.
+fn repack(
+    plane: &[u8],
+    stride: usize,
+    x: usize,
+    y: usize,
+    row_bytes: usize,
+    rows: usize,
+    out: &mut Vec<u8>,
+) {
+    out.clear();
+    for r in 0..rows {
+        let start = (y + r) * stride + x;
+        out.extend_from_slice(&plane[start..start + row_bytes]);
+    }
+}
+
+/// Packed planes of a region, reused per session.
+#[derive(Debug, Default)]
+struct YuvPlanes {
+    y: Vec<u8>,
+    u: Vec<u8>,
+    v: Vec<u8>,
 }
 
 #[cfg(test)]

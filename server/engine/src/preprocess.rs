@@ -1,8 +1,11 @@
 //! The manifest's recipe from packed RGB to the model's input tensor: crop for the resize rule, resize with
 //! the stated interpolation, normalise, and lay out as NCHW or NHWC.
 //!
-//! Resizing uses fast_image_resize (SIMD): its interpolating bilinear filter follows OpenCV's INTER_LINEAR
-//! within one grey level, and its box convolution follows INTER_AREA (exactly for whole-number factors).
+//! Bilinear resizing uses fast_image_resize (SIMD), whose interpolating bilinear filter follows OpenCV's
+//! INTER_LINEAR within one grey level. Area shrinking computes OpenCV's INTER_AREA weights (each output pixel
+//! the coverage-weighted mean of its source area) in a separable pass of our own, because the box
+//! convolution of fast_image_resize parts from INTER_AREA at fractional factors; area enlarging (rare for a
+//! classifier) uses the box convolution.
 
 use fast_image_resize as fir;
 
@@ -90,6 +93,9 @@ pub struct Preprocessor {
     resizer: fir::Resizer,
     resized: Vec<u8>,
     luma: Vec<u8>,
+    area_x: Vec<(usize, usize, f32)>,
+    area_y: Vec<(usize, usize, f32)>,
+    area_rows: Vec<f32>,
 }
 
 impl std::fmt::Debug for Preprocessor {
@@ -103,7 +109,7 @@ impl std::fmt::Debug for Preprocessor {
 pub struct Prepared<'a> {
     /// The resized RGB picture (placement size), before normalisation.
     pub picture: &'a [u8],
-    /// Its luma (OpenCV's fixed-point BT.601 weights), for the quality measures.
+    /// Its luma (BT.601 weights, fixed point as OpenCV), for the quality measures.
     pub luma: &'a [u8],
     /// Width and height of `picture`.
     pub size: (u32, u32),
@@ -148,6 +154,39 @@ impl Preprocessor {
             }
             return;
         }
+        if spec.interpolation == Interpolation::Area && cw >= pw && ch >= ph {
+            let (src_w, dst_w) = (cw as usize, pw as usize);
+            let (src_h, dst_h) = (ch as usize, ph as usize);
+            area_weights(src_w, dst_w, &mut self.area_x);
+            area_weights(src_h, dst_h, &mut self.area_y);
+            // Vertical pass over the crop's rows (contiguous, vectorises well), then horizontal.
+            let row = src_w * 3;
+            self.area_rows.clear();
+            self.area_rows.resize(dst_h * row, 0.0);
+            for &(sy, dy, wgt) in &self.area_y {
+                let start = ((cy as usize + sy) * rgb.width as usize + cx as usize) * 3;
+                let src = &rgb.data[start..start + row];
+                let acc = &mut self.area_rows[dy * row..(dy + 1) * row];
+                for (a, &v) in acc.iter_mut().zip(src) {
+                    *a += wgt * f32::from(v);
+                }
+            }
+            let mut sums = vec![0f32; dst_w * 3];
+            for dy in 0..dst_h {
+                sums.fill(0.0);
+                let acc = &self.area_rows[dy * row..(dy + 1) * row];
+                for &(sx, dx, wgt) in &self.area_x {
+                    for c in 0..3 {
+                        sums[dx * 3 + c] += wgt * acc[sx * 3 + c];
+                    }
+                }
+                let out = &mut self.resized[dy * dst_w * 3..(dy + 1) * dst_w * 3];
+                for (o, v) in out.iter_mut().zip(&sums) {
+                    *o = v.round_ties_even().clamp(0.0, 255.0) as u8;
+                }
+            }
+            return;
+        }
         let algorithm = match spec.interpolation {
             Interpolation::Bilinear => fir::ResizeAlg::Interpolation(fir::FilterType::Bilinear),
             Interpolation::Area => fir::ResizeAlg::Convolution(fir::FilterType::Box),
@@ -169,6 +208,35 @@ impl Preprocessor {
                 }
             }
             _ => self.resized.fill(0),
+        }
+    }
+}
+
+/// Area weights for shrinking `src` samples to `dst` (`src >= dst`): for each output sample, the share of each
+/// source sample its interval covers, as OpenCV's INTER_AREA computes them (`computeResizeAreaTab`), as
+/// (source index, output index, weight) in output order.
+fn area_weights(src: usize, dst: usize, out: &mut Vec<(usize, usize, f32)>) {
+    out.clear();
+    let scale = src as f64 / dst as f64;
+    for dx in 0..dst {
+        let fsx1 = dx as f64 * scale;
+        let fsx2 = fsx1 + scale;
+        let cell = scale.min(src as f64 - fsx1);
+        let mut sx2 = fsx2.floor() as usize;
+        sx2 = sx2.min(src - 1);
+        let sx1 = (fsx1.ceil() as usize).min(sx2);
+        if sx1 as f64 - fsx1 > 1e-3 {
+            out.push((sx1 - 1, dx, ((sx1 as f64 - fsx1) / cell) as f32));
+        }
+        for sx in sx1..sx2 {
+            out.push((sx, dx, (1.0 / cell) as f32));
+        }
+        if fsx2 - sx2 as f64 > 1e-3 {
+            out.push((
+                sx2,
+                dx,
+                ((fsx2 - sx2 as f64).min(1.0).min(cell) / cell) as f32,
+            ));
         }
     }
 }
@@ -228,12 +296,12 @@ fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut V
     }
 }
 
-/// Luma of packed RGB with OpenCV's fixed-point BT.601 weights (as `cv2.cvtColor(..., COLOR_RGB2GRAY)`):
-/// `(4899 R + 9617 G + 1868 B + 8192) >> 14`.
+/// Luma of packed RGB with the BT.601 weights 0.299, 0.587, 0.114 in 15-bit fixed point, as OpenCV 5's
+/// `cv2.cvtColor(..., COLOR_RGB2GRAY)` computes them: `(9798 R + 19235 G + 3735 B + 16384) >> 15`.
 pub fn luma_of(rgb: &[u8], out: &mut Vec<u8>) {
     out.clear();
     out.extend(rgb.chunks_exact(3).map(|p| {
-        ((4899 * u32::from(p[0]) + 9617 * u32::from(p[1]) + 1868 * u32::from(p[2]) + 8192) >> 14)
+        ((9798 * u32::from(p[0]) + 19235 * u32::from(p[1]) + 3735 * u32::from(p[2]) + 16384) >> 15)
             as u8
     }));
 }

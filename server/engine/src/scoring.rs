@@ -51,13 +51,15 @@ pub struct TimeMetrics {
     pub coverage: f64,
 }
 
-/// Index of the largest value.
+/// Index of the largest value; the first one on ties (as NumPy's `argmax`).
 pub fn argmax(p: &[f32]) -> Option<usize> {
-    p.iter()
-        .copied()
-        .enumerate()
-        .max_by(|a, b| a.1.total_cmp(&b.1))
-        .map(|(i, _)| i)
+    let mut best: Option<(usize, f32)> = None;
+    for (i, &v) in p.iter().enumerate() {
+        if best.is_none_or(|(_, b)| v > b) {
+            best = Some((i, v));
+        }
+    }
+    best.map(|(i, _)| i)
 }
 
 /// One-vs-rest ROC AUC by the Mann-Whitney statistic with average ranks for ties.
