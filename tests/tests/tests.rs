@@ -4,5 +4,6 @@
 //! onnxruntime, OpenCV, SciPy and NumPy; the helper in `framewise_tests` makes them on first use.
 
 mod cli;
+mod commands;
 mod reference;
 mod server;

@@ -1,0 +1,250 @@
+//! The client's commands end to end: replay (server and offline, interrupted and resumed), bench, metrics.
+
+use std::path::Path;
+use std::sync::Arc;
+
+use framewise_cli::recording::Recording;
+use framewise_cli::replay::{self, FrameSource, Pacing, Target};
+use framewise_cli::settings::SessionFlags;
+use framewise_models_demo::recording::{Recording as Synthetic, RecordingKind};
+use framewise_server::{ModelRegistry, ServerConfig};
+use framewise_tests::demo_model;
+
+fn flags() -> SessionFlags {
+    SessionFlags {
+        model_name: String::new(),
+        filter: "exp:300".into(),
+        enter: 0.6,
+        exit: 0.4,
+        dwell_ms: 300.0,
+        min_focus: 0.0,
+        max_clipped: 1.0,
+        roi: None,
+        policy: "every".into(),
+        deadline_ms: 0,
+        yuv: "bt601-limited".into(),
+        source_label: "test".into(),
+    }
+}
+
+fn synthetic_recording(dir: &Path, frames_seconds: f64) -> Arc<dyn FrameSource> {
+    let rec = Synthetic::plan(
+        RecordingKind::Sweep {
+            seconds: frames_seconds,
+            fps: 30.0,
+        },
+        5,
+        160,
+        120,
+    );
+    rec.write(dir, |_| {}).expect("recording written");
+    Arc::new(Recording::open(dir).expect("recording opens"))
+}
+
+/// The lines of a results file without the fields that measure time.
+fn comparable(path: &Path) -> Vec<serde_json::Value> {
+    std::fs::read_to_string(path)
+        .expect("results")
+        .lines()
+        .map(|l| {
+            let mut v: serde_json::Value = serde_json::from_str(l).expect("whole JSON line");
+            if let Some(o) = v.as_object_mut() {
+                o.remove("timings_us");
+                o.remove("round_trip_us");
+                o.remove("engine_at");
+            }
+            v
+        })
+        .collect()
+}
+
+async fn start_server() -> framewise_server::RunningServer {
+    let config = ServerConfig {
+        listen: "127.0.0.1:0".parse().expect("addr"),
+        ..Default::default()
+    };
+    framewise_server::start(config, Some(ModelRegistry::new(vec![demo_model()])))
+        .await
+        .expect("server starts")
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn replay_through_the_server_equals_offline_and_resumes_without_duplicates() {
+    let dir = tempdir("replay");
+    let source = synthetic_recording(&dir.join("rec"), 3.0);
+    let server = start_server().await;
+    let url = format!("http://{}", server.addr);
+    let target = Target::Server { url, token: None };
+    let full = dir.join("full.jsonl");
+    let tally = replay::replay(
+        source.clone(),
+        &target,
+        &flags(),
+        Pacing::Fast,
+        Some(&full),
+        false,
+        |_| {},
+    )
+    .await
+    .expect("replay runs");
+    assert_eq!(tally.results, source.len());
+
+    // Offline gives the same numbers (the engine code is shared; timestamps are converted the same way).
+    let offline = dir.join("offline.jsonl");
+    replay::replay(
+        source.clone(),
+        &Target::Offline { model: None },
+        &flags(),
+        Pacing::Fast,
+        Some(&offline),
+        false,
+        |_| {},
+    )
+    .await
+    .expect("offline replay runs");
+    assert_eq!(
+        comparable(&full)[1..],
+        comparable(&offline)[1..],
+        "server and offline lines differ"
+    );
+
+    // An interrupted run: the file ends inside a line. Resuming keeps the whole lines, cuts the torn one
+    // and adds the rest once each.
+    let interrupted = dir.join("interrupted.jsonl");
+    let bytes = std::fs::read(&full).expect("full file");
+    let cut = bytes.len() * 2 / 5;
+    std::fs::write(&interrupted, &bytes[..cut]).expect("torn file");
+    let tally = replay::replay(
+        source.clone(),
+        &target,
+        &flags(),
+        Pacing::Fast,
+        Some(&interrupted),
+        true,
+        |_| {},
+    )
+    .await
+    .expect("resumed replay runs");
+    assert!(
+        tally.kept > 0 && tally.kept < source.len(),
+        "kept {}",
+        tally.kept
+    );
+    assert_eq!(tally.kept + tally.written, source.len());
+    assert_eq!(
+        comparable(&interrupted),
+        comparable(&full),
+        "the resumed file differs from an uninterrupted run"
+    );
+    server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn unreadable_frames_are_reported_and_the_rest_goes_on() {
+    let dir = tempdir("unreadable");
+    let rec_dir = dir.join("rec");
+    let _ = synthetic_recording(&rec_dir, 1.0);
+    std::fs::write(rec_dir.join("frame_000003.png"), b"not a png").expect("corrupt a frame");
+    let source: Arc<dyn FrameSource> = Arc::new(Recording::open(&rec_dir).expect("opens"));
+    let out = dir.join("out.jsonl");
+    let tally = replay::replay(
+        source.clone(),
+        &Target::Offline { model: None },
+        &flags(),
+        Pacing::Fast,
+        Some(&out),
+        false,
+        |_| {},
+    )
+    .await
+    .expect("replay runs");
+    assert_eq!(tally.errors, 1);
+    assert_eq!(tally.results, source.len() - 1);
+    let lines = comparable(&out);
+    assert_eq!(lines[0]["kind"], "header");
+    assert!(
+        lines[0]["caution"]
+            .as_str()
+            .expect("caution")
+            .contains("Decision support only")
+    );
+    let bad = lines
+        .iter()
+        .find(|l| l["seq"] == 3)
+        .expect("frame 3 answered");
+    assert_eq!(bad["kind"], "error");
+    assert!(
+        bad["error"]
+            .as_str()
+            .expect("message")
+            .contains("decode_failed"),
+        "{bad}"
+    );
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn bench_writes_a_valid_report_and_gates() {
+    let dir = tempdir("bench");
+    let server = start_server().await;
+    let args = framewise_cli::bench::BenchArgs {
+        servers: vec![format!("http://{}", server.addr)],
+        token: None,
+        sessions: 2,
+        fps: 10.0,
+        seconds: 2.0,
+        width: 320,
+        height: 240,
+        format: "nv12".into(),
+        late_ms: 100.0,
+        json: Some(dir.join("bench.json")),
+        hdr_log: Some(dir.join("bench.hlog")),
+        plot: Some(dir.join("bench.svg")),
+        max_p99_ms: Some(60_000.0),
+        min_fps: Some(1.0),
+        session: flags(),
+    };
+    let (report, pass) = framewise_cli::bench::run(args.clone())
+        .await
+        .expect("bench runs");
+    assert!(pass, "generous gates pass");
+    assert_eq!(report.scheduled, 40);
+    assert_eq!(report.results + report.skipped + report.failed, 40);
+    assert!(report.end_to_end_ms.p50 > 0.0 && report.end_to_end_ms.p99 >= report.end_to_end_ms.p50);
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.join("bench.json")).expect("json"))
+            .expect("valid JSON");
+    assert!(
+        json["caution"]
+            .as_str()
+            .expect("caution")
+            .contains("Decision support only")
+    );
+    // HdrHistogram interval log: a comment and one tagged interval line.
+    let log = std::fs::read_to_string(dir.join("bench.hlog")).expect("log");
+    assert!(log.contains("Tag=end_to_end_us,"), "{log}");
+    assert!(
+        std::fs::read_to_string(dir.join("bench.svg"))
+            .expect("plot")
+            .contains("not a diagnosis")
+    );
+    let strict = framewise_cli::bench::BenchArgs {
+        max_p99_ms: Some(0.001),
+        seconds: 0.5,
+        json: None,
+        hdr_log: None,
+        plot: None,
+        ..args
+    };
+    let (_, pass) = framewise_cli::bench::run(strict).await.expect("bench runs");
+    assert!(!pass, "an impossible p99 gate fails");
+    server.stop().await.expect("stops");
+}
+
+fn tempdir(name: &str) -> std::path::PathBuf {
+    let dir = framewise_tests::workspace_root()
+        .join("target/test-scratch")
+        .join(format!("{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).expect("scratch dir");
+    dir
+}
