@@ -18,6 +18,9 @@ use crate::replay::{self, FrameSource, Pacing, Target};
 use crate::score;
 use crate::settings::SessionFlags;
 
+/// The demo's exposure gate: the largest share of clipped pixels a frame may have and still update the filter.
+pub const DEMO_MAX_CLIPPED: f64 = 0.3;
+
 /// Options of `demo`.
 #[derive(Debug, Clone, Args)]
 pub struct DemoArgs {
@@ -71,7 +74,7 @@ impl FrameSource for Synthetic {
 }
 
 /// Runs the demo.
-pub async fn run(args: DemoArgs) -> Result<()> {
+pub async fn run(mut args: DemoArgs) -> Result<()> {
     anyhow::ensure!(
         args.seconds > 0.0 && args.seconds <= 600.0,
         "--seconds must be in (0, 600]"
@@ -80,6 +83,11 @@ pub async fn run(args: DemoArgs) -> Result<()> {
         args.fps > 0.0 && args.fps <= 120.0,
         "--fps must be in (0, 120]"
     );
+    // The phantom sweep has glare bursts and exposure dips: the demo turns the exposure gate on unless told
+    // otherwise (frames with more than 30% clipped pixels do not update the filter).
+    if args.session.max_clipped == 1.0 {
+        args.session.max_clipped = DEMO_MAX_CLIPPED;
+    }
     eprintln!("framewise demo. {CAUTION}");
     eprintln!(
         "The demo model is a toy trained on an invented bench-top phantom; it is not a medical model."

@@ -137,7 +137,12 @@ impl Report {
                 format!("{:.3}", self.decisions.coverage),
             ],
             vec![
-                "switches per minute".into(),
+                "call changes per minute".into(),
+                format!("{:.1}", self.raw_calls.call_changes_per_minute),
+                format!("{:.1}", self.decisions.call_changes_per_minute),
+            ],
+            vec![
+                "switches per minute (incl. undetermined)".into(),
                 format!("{:.1}", self.raw_calls.switches_per_minute),
                 format!("{:.1}", self.decisions.switches_per_minute),
             ],
@@ -327,6 +332,7 @@ pub fn sweep_human(points: &[SweepPoint]) -> String {
                 p.filter.clone(),
                 d.median_time_to_correct_ms
                     .map_or("-".into(), |v| format!("{v:.0}")),
+                format!("{:.1}", d.call_changes_per_minute),
                 format!("{:.1}", d.switches_per_minute),
                 format!("{:.1}", d.false_calls_per_minute),
                 format!("{:.3}", d.call_accuracy),
@@ -339,6 +345,7 @@ pub fn sweep_human(points: &[SweepPoint]) -> String {
         &[
             "filter",
             "delay ms (median)",
+            "call changes/min",
             "switches/min",
             "false calls/min",
             "call accuracy",

@@ -307,6 +307,10 @@ pub fn sweep(drum: &Drum, seconds: f64, fps: f64, rng: &mut SplitMix64) -> Vec<S
     };
     let mut glare_until = -1.0;
     let mut glare = None;
+    let mut shake_until = -1.0;
+    let mut shake = 0.0;
+    let mut dip_until = -1.0;
+    let mut dip = 1.0;
     let mut frames = Vec::with_capacity(total);
     let mut across = rng.range(-2.0, 2.0);
     let mut roll = rng.range(-0.2, 0.2);
@@ -319,14 +323,24 @@ pub fn sweep(drum: &Drum, seconds: f64, fps: f64, rng: &mut SplitMix64) -> Vec<S
         let (position, speed) = position_at(time);
         across += rng.range(-0.002, 0.002);
         roll = (roll + rng.range(-0.003, 0.003)).clamp(-0.4, 0.4);
-        if time > glare_until && rng.chance(0.008) {
-            glare_until = time + rng.range(150.0, 600.0);
+        // Nuisances of a hand-held scope, in bursts: glare from the light source, camera shake, and
+        // exposure dips. They make single frames unreliable, which is what the temporal filter is for.
+        if time > glare_until && rng.chance(0.02) {
+            glare_until = time + rng.range(100.0, 500.0);
             glare = Some((
-                rng.range(0.3, 0.7),
-                rng.range(0.3, 0.7),
-                rng.range(0.08, 0.2),
-                rng.range(0.6, 1.2),
+                rng.range(0.25, 0.75),
+                rng.range(0.25, 0.75),
+                rng.range(0.12, 0.35),
+                rng.range(0.8, 1.6),
             ));
+        }
+        if time > shake_until && rng.chance(0.015) {
+            shake_until = time + rng.range(80.0, 300.0);
+            shake = rng.range(0.03, 0.09);
+        }
+        if time > dip_until && rng.chance(0.01) {
+            dip_until = time + rng.range(100.0, 400.0);
+            dip = rng.range(0.25, 0.5);
         }
         let view = View {
             position,
@@ -334,9 +348,9 @@ pub fn sweep(drum: &Drum, seconds: f64, fps: f64, rng: &mut SplitMix64) -> Vec<S
             roll,
             field: 0.45,
             // the shutter is open for about half the frame interval
-            blur: (speed * interval * 0.5).abs(),
+            blur: (speed * interval * 0.5).abs() + if time <= shake_until { shake } else { 0.0 },
             glare: if time <= glare_until { glare } else { None },
-            gain: 0.95,
+            gain: if time <= dip_until { 0.95 * dip } else { 0.95 },
             noise_seed: rng.next_u64(),
             noise: 2.5,
         };

@@ -9,9 +9,12 @@ use std::collections::VecDeque;
 /// The forward filter's default step: one frame at 30 frames per second.
 pub const DEFAULT_STEP_MS: f64 = 1000.0 / 30.0;
 
-/// Floor on a scaled likelihood, so that one frame with a probability of exactly 0 cannot rule a class out
-/// for ever.
-pub const LIKELIHOOD_FLOOR: f64 = 1e-9;
+/// Floor on a scaled likelihood (probability divided by prior), so that one overconfident frame (a
+/// classifier's softmax on a glare-washed frame can give the true class 1e-6) cannot all but rule a class
+/// out: a single frame can then shift the odds between two classes by at most (1 / prior) / floor. The value
+/// is ours (common practice is to bound emission probabilities; no published value), tuned with
+/// `framewise score --sweep` on the demo recording.
+pub const LIKELIHOOD_FLOOR: f64 = 0.02;
 
 /// Which temporal filter, with its parameters.
 #[derive(Debug, Clone, PartialEq)]

@@ -35,8 +35,10 @@ pub struct FrameMetrics {
 /// Over-time metrics of a sequence of calls.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct TimeMetrics {
-    /// Changes of the called value per minute.
+    /// Changes of the called value per minute, undetermined included as a value (every visible flicker).
     pub switches_per_minute: f64,
+    /// Changes from one called class to another per minute, undetermined frames in between skipped.
+    pub call_changes_per_minute: f64,
     /// Calls that start on a class other than the label, per minute.
     pub false_calls_per_minute: f64,
     /// Median time from a labelled segment's start to the first correct call, ms (None if never).
@@ -177,10 +179,18 @@ pub fn time_metrics(calls: &[Option<usize>], labels: &[usize], t_ms: &[f64]) -> 
         1e-9
     };
     let mut switches = 0usize;
+    let mut call_changes = 0usize;
+    let mut last_call: Option<usize> = None;
     let mut false_calls = 0usize;
     for i in 0..n {
         if i > 0 && calls[i] != calls[i - 1] {
             switches += 1;
+        }
+        if let Some(c) = calls[i] {
+            if last_call.is_some_and(|l| l != c) {
+                call_changes += 1;
+            }
+            last_call = Some(c);
         }
         let starts = calls[i].is_some() && (i == 0 || calls[i] != calls[i - 1]);
         if starts && calls[i] != Some(labels[i]) {
@@ -220,6 +230,7 @@ pub fn time_metrics(calls: &[Option<usize>], labels: &[usize], t_ms: &[f64]) -> 
     let covered = calls.iter().filter(|c| c.is_some()).count();
     TimeMetrics {
         switches_per_minute: switches as f64 / minutes,
+        call_changes_per_minute: call_changes as f64 / minutes,
         false_calls_per_minute: false_calls as f64 / minutes,
         median_time_to_correct_ms: median,
         segments_missed: missed,
@@ -253,6 +264,7 @@ mod tests {
         let t: Vec<f64> = (0..6).map(|i| i as f64 * 12_000.0).collect();
         let m = time_metrics(&calls, &labels, &t);
         assert_eq!(m.switches_per_minute, 2.0);
+        assert_eq!(m.call_changes_per_minute, 1.0);
         assert_eq!(m.false_calls_per_minute, 0.0);
         assert_eq!(m.median_time_to_correct_ms, Some(6_000.0));
         assert_eq!(m.segments, 2);
