@@ -45,9 +45,18 @@ pub struct DemoArgs {
 }
 
 /// The synthetic sweep as a frame source (frames rendered on demand).
-struct Synthetic {
+pub struct Synthetic {
     recording: Recording,
     description: String,
+}
+
+impl Synthetic {
+    /// The demo's sweep: `seconds` at `fps`, 640x480, from `seed`.
+    pub fn sweep(seconds: f64, fps: f64, seed: u64) -> Self {
+        let recording = Recording::plan(RecordingKind::Sweep { seconds, fps }, seed, 640, 480);
+        let description = format!("synthetic phantom sweep, seed {seed}, {seconds} s at {fps} fps, 640x480");
+        Self { recording, description }
+    }
 }
 
 impl FrameSource for Synthetic {
@@ -104,22 +113,7 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
         "in-process server on {url}; streaming a {:.0} s synthetic sweep at {:.0} fps",
         args.seconds, args.fps
     );
-    let recording = Recording::plan(
-        RecordingKind::Sweep {
-            seconds: args.seconds,
-            fps: args.fps,
-        },
-        args.seed,
-        640,
-        480,
-    );
-    let source: Arc<dyn FrameSource> = Arc::new(Synthetic {
-        recording,
-        description: format!(
-            "synthetic phantom sweep, seed {}, {} s at {} fps, 640x480",
-            args.seed, args.seconds, args.fps
-        ),
-    });
+    let source: Arc<dyn FrameSource> = Arc::new(Synthetic::sweep(args.seconds, args.fps, args.seed));
     std::fs::create_dir_all(&args.out)
         .with_context(|| format!("creating {}", args.out.display()))?;
     let results_path = args.out.join("results.jsonl");

@@ -65,10 +65,10 @@ impl Drum {
         rng.shuffle(&mut order);
         // Neighbouring zones of one class would be one long zone: swap them apart where possible.
         for i in 1..order.len() {
-            if order[i] == order[i - 1] {
-                if let Some(j) = (i + 1..order.len()).find(|&j| order[j] != order[i - 1]) {
-                    order.swap(i, j);
-                }
+            if order[i] == order[i - 1]
+                && let Some(j) = (i + 1..order.len()).find(|&j| order[j] != order[i - 1])
+            {
+                order.swap(i, j);
             }
         }
         Self::new(&order, rng)
@@ -95,10 +95,7 @@ impl Drum {
     fn reflectance(&self, u: f64, v: f64) -> [f64; 3] {
         let zone = self.zone_at(u);
         let ink = zone.ink_share(u, v);
-        let mut out = [0.0; 3];
-        for c in 0..3 {
-            out[c] = zone.paper[c] * (1.0 - ink) + zone.ink[c] * ink;
-        }
+        let mut out: [f64; 3] = std::array::from_fn(|c| zone.paper[c] * (1.0 - ink) + zone.ink[c] * ink);
         // A thin dark seam between zones, as printed sheets leave.
         let frac = u.rem_euclid(1.0);
         if !(0.004..=0.996).contains(&frac) {

@@ -248,3 +248,33 @@ fn tempdir(name: &str) -> std::path::PathBuf {
     std::fs::create_dir_all(&dir).expect("scratch dir");
     dir
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn on_the_demo_sweep_smoothed_calls_change_far_less_often_than_raw_arg_max() {
+    // The demo's recording and settings, offline (the same engine code as the server's).
+    let source: Arc<dyn FrameSource> = Arc::new(framewise_cli::demo::Synthetic::sweep(20.0, 30.0, 42));
+    let dir = tempdir("demo-sweep");
+    let out = dir.join("demo.jsonl");
+    let flags = SessionFlags { dwell_ms: 500.0, max_clipped: framewise_cli::demo::DEMO_MAX_CLIPPED, ..flags() };
+    replay::replay(source, &Target::Offline { model: None }, &flags, Pacing::Fast, Some(&out), false, |_| {})
+        .await
+        .expect("replay runs");
+    let (header, records) = framewise_cli::score::read_results(&out).expect("results read");
+    let report = framewise_cli::score::Report::compute(&records, &header.classes).expect("scored");
+    eprintln!(
+        "demo sweep: accuracy raw {:.3} smoothed {:.3}; call changes/min raw {:.1} decisions {:.1}",
+        report.raw.accuracy,
+        report.smoothed.accuracy,
+        report.raw_calls.call_changes_per_minute,
+        report.decisions.call_changes_per_minute
+    );
+    // A sanity bound only (the measured figures go in the README): the decisions change call at least five
+    // times less often than the per-frame arg-max.
+    assert!(
+        report.raw_calls.call_changes_per_minute >= 5.0 * report.decisions.call_changes_per_minute,
+        "raw {} vs decisions {} call changes per minute",
+        report.raw_calls.call_changes_per_minute,
+        report.decisions.call_changes_per_minute
+    );
+    assert!(report.raw.accuracy > 0.0 && report.smoothed.accuracy > 0.0);
+}
