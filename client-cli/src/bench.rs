@@ -235,10 +235,10 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
                 &shared,
             )
             .await;
-            if let Err(e) = outcome {
-                if let Ok(mut sh) = shared.lock() {
-                    sh.failures.push(format!("session {s} on {url}: {e:#}"));
-                }
+            if let Err(e) = outcome
+                && let Ok(mut sh) = shared.lock()
+            {
+                sh.failures.push(format!("session {s} on {url}: {e:#}"));
             }
         }));
     }
@@ -289,23 +289,23 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
             .with_context(|| format!("writing {}", path.display()))?;
     }
     let mut pass = true;
-    if let Some(limit) = args.max_p99_ms {
-        if report.end_to_end_ms.p99 > limit {
-            eprintln!(
-                "framewise bench: gate failed: end-to-end p99 {:.2} ms > {limit} ms",
-                report.end_to_end_ms.p99
-            );
-            pass = false;
-        }
+    if let Some(limit) = args.max_p99_ms
+        && report.end_to_end_ms.p99 > limit
+    {
+        eprintln!(
+            "framewise bench: gate failed: end-to-end p99 {:.2} ms > {limit} ms",
+            report.end_to_end_ms.p99
+        );
+        pass = false;
     }
-    if let Some(limit) = args.min_fps {
-        if report.achieved_fps < limit {
-            eprintln!(
-                "framewise bench: gate failed: achieved {:.1} fps < {limit} fps",
-                report.achieved_fps
-            );
-            pass = false;
-        }
+    if let Some(limit) = args.min_fps
+        && report.achieved_fps < limit
+    {
+        eprintln!(
+            "framewise bench: gate failed: achieved {:.1} fps < {limit} fps",
+            report.achieved_fps
+        );
+        pass = false;
     }
     if report.results == 0 {
         bail!("no frame got a result: {:?}", report.failed_sessions);
@@ -330,10 +330,10 @@ async fn one_session(
 ) -> Result<()> {
     let mut grpc = client::connect(url).await?;
     let session = client::open(&mut grpc, opening, token).await?;
-    if let Ok(mut sh) = shared.lock() {
-        if sh.model.is_none() {
-            sh.model = session.accepted.model.clone();
-        }
+    if let Ok(mut sh) = shared.lock()
+        && sh.model.is_none()
+    {
+        sh.model = session.accepted.model.clone();
     }
     let (w, h) = if format.is_encoded() {
         (0, 0)

@@ -54,8 +54,12 @@ impl Synthetic {
     /// The demo's sweep: `seconds` at `fps`, 640x480, from `seed`.
     pub fn sweep(seconds: f64, fps: f64, seed: u64) -> Self {
         let recording = Recording::plan(RecordingKind::Sweep { seconds, fps }, seed, 640, 480);
-        let description = format!("synthetic phantom sweep, seed {seed}, {seconds} s at {fps} fps, 640x480");
-        Self { recording, description }
+        let description =
+            format!("synthetic phantom sweep, seed {seed}, {seconds} s at {fps} fps, 640x480");
+        Self {
+            recording,
+            description,
+        }
     }
 }
 
@@ -113,7 +117,8 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
         "in-process server on {url}; streaming a {:.0} s synthetic sweep at {:.0} fps",
         args.seconds, args.fps
     );
-    let source: Arc<dyn FrameSource> = Arc::new(Synthetic::sweep(args.seconds, args.fps, args.seed));
+    let source: Arc<dyn FrameSource> =
+        Arc::new(Synthetic::sweep(args.seconds, args.fps, args.seed));
     std::fs::create_dir_all(&args.out)
         .with_context(|| format!("creating {}", args.out.display()))?;
     let results_path = args.out.join("results.jsonl");
@@ -137,7 +142,7 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
         false,
         |r: &FrameRecord| {
             shown += 1;
-            if live && (shown % 3 == 0 || shown == total) {
+            if live && (shown.is_multiple_of(3) || shown == total) {
                 eprint!("\r\x1b[2K{}", live_line(r, shown, total));
             }
         },

@@ -131,11 +131,11 @@ impl FrameRecord {
                 r.kind = "result".into();
                 r.raw = res.raw.clone();
                 r.smoothed = res.smoothed.clone();
-                if let Some(d) = &res.decision {
-                    if d.determined {
-                        r.decision = Some(d.class_name.clone());
-                        r.confidence = d.confidence;
-                    }
+                if let Some(d) = &res.decision
+                    && d.determined
+                {
+                    r.decision = Some(d.class_name.clone());
+                    r.confidence = d.confidence;
                 }
                 if let Some(q) = &res.quality {
                     r.usable = q.usable;

@@ -20,6 +20,10 @@ use crate::settings::SessionFlags;
 pub trait FrameSource: Send + Sync {
     /// Number of frames.
     fn len(&self) -> usize;
+    /// True when there are no frames.
+    fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
     /// Name, capture time (ms) and label of frame `i`.
     fn meta(&self, i: usize) -> (String, f64, Option<String>);
     /// The bytes of frame `i`.
@@ -235,7 +239,7 @@ pub async fn replay(
             write_header(&header, &mut writer)?;
             tally.header = Some(header);
             let pace_start = Instant::now();
-            let t0 = if source.len() > 0 {
+            let t0 = if !source.is_empty() {
                 source.meta(0).1
             } else {
                 0.0
@@ -328,7 +332,7 @@ pub async fn replay(
                 let (source, sent_at, frames) = (source.clone(), sent_at.clone(), session.frames);
                 tokio::spawn(async move {
                     let pace_start = Instant::now();
-                    let t0 = if source.len() > 0 {
+                    let t0 = if !source.is_empty() {
                         source.meta(0).1
                     } else {
                         0.0

@@ -95,7 +95,8 @@ impl Drum {
     fn reflectance(&self, u: f64, v: f64) -> [f64; 3] {
         let zone = self.zone_at(u);
         let ink = zone.ink_share(u, v);
-        let mut out: [f64; 3] = std::array::from_fn(|c| zone.paper[c] * (1.0 - ink) + zone.ink[c] * ink);
+        let mut out: [f64; 3] =
+            std::array::from_fn(|c| zone.paper[c] * (1.0 - ink) + zone.ink[c] * ink);
         // A thin dark seam between zones, as printed sheets leave.
         let frac = u.rem_euclid(1.0);
         if !(0.004..=0.996).contains(&frac) {

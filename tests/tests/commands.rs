@@ -252,13 +252,26 @@ fn tempdir(name: &str) -> std::path::PathBuf {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn on_the_demo_sweep_smoothed_calls_change_far_less_often_than_raw_arg_max() {
     // The demo's recording and settings, offline (the same engine code as the server's).
-    let source: Arc<dyn FrameSource> = Arc::new(framewise_cli::demo::Synthetic::sweep(20.0, 30.0, 42));
+    let source: Arc<dyn FrameSource> =
+        Arc::new(framewise_cli::demo::Synthetic::sweep(20.0, 30.0, 42));
     let dir = tempdir("demo-sweep");
     let out = dir.join("demo.jsonl");
-    let flags = SessionFlags { dwell_ms: 500.0, max_clipped: framewise_cli::demo::DEMO_MAX_CLIPPED, ..flags() };
-    replay::replay(source, &Target::Offline { model: None }, &flags, Pacing::Fast, Some(&out), false, |_| {})
-        .await
-        .expect("replay runs");
+    let flags = SessionFlags {
+        dwell_ms: 500.0,
+        max_clipped: framewise_cli::demo::DEMO_MAX_CLIPPED,
+        ..flags()
+    };
+    replay::replay(
+        source,
+        &Target::Offline { model: None },
+        &flags,
+        Pacing::Fast,
+        Some(&out),
+        false,
+        |_| {},
+    )
+    .await
+    .expect("replay runs");
     let (header, records) = framewise_cli::score::read_results(&out).expect("results read");
     let report = framewise_cli::score::Report::compute(&records, &header.classes).expect("scored");
     eprintln!(

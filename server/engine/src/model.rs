@@ -219,13 +219,13 @@ impl Model {
     pub fn load(package: &ModelPackage, pinned_sha256: Option<&str>) -> Result<Self, ModelError> {
         let manifest = package.manifest.clone();
         let sha256 = package.sha256();
-        if let Some(expected) = pinned_sha256 {
-            if !expected.eq_ignore_ascii_case(&sha256) {
-                return Err(ModelError::HashMismatch {
-                    expected: expected.to_lowercase(),
-                    actual: sha256,
-                });
-            }
+        if let Some(expected) = pinned_sha256
+            && !expected.eq_ignore_ascii_case(&sha256)
+        {
+            return Err(ModelError::HashMismatch {
+                expected: expected.to_lowercase(),
+                actual: sha256,
+            });
         }
         let onnx = tract_onnx::onnx();
         let proto = onnx
@@ -578,17 +578,17 @@ fn check_output_declared(manifest: &Manifest, graph: &pb::GraphProto) -> Result<
         manifest: format!("`{wanted}`"),
         graph: format!("outputs {names:?}"),
     })?;
-    if let Some((elem, _)) = value_type(info) {
-        if elem != ONNX_FLOAT {
-            return Err(ModelError::Mismatch {
-                field: "output.tensor",
-                manifest: "float32 class scores".into(),
-                graph: format!(
-                    "element type {elem} (ONNX TensorProto.DataType) for `{}`",
-                    info.name
-                ),
-            });
-        }
+    if let Some((elem, _)) = value_type(info)
+        && elem != ONNX_FLOAT
+    {
+        return Err(ModelError::Mismatch {
+            field: "output.tensor",
+            manifest: "float32 class scores".into(),
+            graph: format!(
+                "element type {elem} (ONNX TensorProto.DataType) for `{}`",
+                info.name
+            ),
+        });
     }
     Ok(())
 }

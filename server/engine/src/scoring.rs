@@ -124,6 +124,7 @@ pub fn expected_calibration_error(confidence: &[f64], correct: &[bool], bins: us
 }
 
 /// Frame-level metrics of probability vectors against label indices.
+#[allow(clippy::needless_range_loop)] // c indexes rows and columns of the confusion matrix alike
 pub fn frame_metrics(probs: &[Vec<f32>], labels: &[usize], k: usize) -> FrameMetrics {
     let n = labels.len();
     let mut confusion = vec![vec![0u64; k]; k];

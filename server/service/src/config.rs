@@ -164,10 +164,10 @@ impl ServerConfig {
                 );
             }
         }
-        if let Some(token) = &self.token {
-            if token.len() < 16 {
-                return bad("token", "must be at least 16 characters".into());
-            }
+        if let Some(token) = &self.token
+            && token.len() < 16
+        {
+            return bad("token", "must be at least 16 characters".into());
         }
         if !self.demo_model && self.models.is_empty() {
             return bad(
