@@ -18,7 +18,7 @@ pub struct WorkerPool {
 
 /// The pool has stopped.
 #[derive(Debug, Clone, Copy, thiserror::Error)]
-#[error("the worker pool has stopped")]
+#[error("the worker pool has stopped, or the job failed")]
 pub struct PoolStopped;
 
 impl WorkerPool {
@@ -38,7 +38,16 @@ impl WorkerPool {
                             Err(_) => None,
                         };
                         match job {
-                            Some(job) => job(),
+                            // A panicking job must not take the worker with it: its session gets an
+                            // error answer (the result channel closes) and the worker goes on.
+                            Some(job) => {
+                                let run = std::panic::AssertUnwindSafe(job);
+                                if std::panic::catch_unwind(run).is_err() {
+                                    tracing::error!(
+                                        "a worker job panicked; its frame got an error answer"
+                                    );
+                                }
+                            }
                             None => break,
                         }
                     }
