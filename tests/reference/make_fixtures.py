@@ -22,6 +22,7 @@ import tomllib
 
 import cv2
 import numpy as np
+import onnx
 import onnxruntime as ort
 from scipy.signal import lfilter
 from sklearn.calibration import calibration_curve
@@ -374,6 +375,65 @@ def y4m_cases(w, seed):
     return {"clips": out, "truncated": {"file": "clip_truncated.y4m", "whole_frames": 2}}
 
 
+# Operators an image classifier exported to ONNX commonly uses (common practice; the list is ours).
+CLASSIFIER_OPS = ["Conv", "Relu", "Clip", "MaxPool", "AveragePool", "GlobalAveragePool", "BatchNormalization",
+                  "Gemm", "MatMul", "Add", "Mul", "Softmax", "Flatten", "Reshape", "Transpose", "Concat", "Sigmoid",
+                  "Resize"]
+
+
+def operator_cases(w):
+    """The onnx package's own node test cases (onnx.backend.test.case) for CLASSIFIER_OPS, generated here.
+    Every graph input but the first is turned into an initializer holding the case's value, as in an exported
+    model; the first input and the expected outputs are written beside the model."""
+    from onnx import helper, numpy_helper
+    from onnx.backend.test.case.node import collect_testcases
+    out = []
+    # collect_testcases imports its modules once, so collect every case once and pick by the node's operator.
+    every = collect_testcases(None)
+    for op in CLASSIFIER_OPS:
+        picked = [c for c in every if c.model is not None and [n.op_type for n in c.model.graph.node] == [op]]
+        for case in picked:
+            for k, (inputs, outputs) in enumerate(case.data_sets or []):
+                model = onnx.ModelProto()
+                model.CopyFrom(case.model)
+                graph = model.graph
+                names = [i.name for i in graph.input]
+                if not names or len(inputs) != len(names):
+                    continue
+                first = np.asarray(inputs[0])
+                for name, value in zip(names[1:], inputs[1:]):
+                    if value is None:
+                        continue
+                    graph.initializer.append(numpy_helper.from_array(np.asarray(value), name))
+                keep = [i for i in graph.input if i.name == names[0]]
+                del graph.input[:]
+                graph.input.extend(keep)
+                if first.dtype.kind not in "fiub":
+                    continue
+                path = w.bin(np.frombuffer(model.SerializeToString(), dtype=np.uint8), f"op_{case.name}_model")
+                outs = [np.asarray(o) for o in outputs]
+                out.append({
+                    "op": op, "name": f"{case.name}_{k}", "model": path,
+                    "input": w.bin(first, "op_input"), "input_dtype": str(first.dtype), "input_shape": list(first.shape),
+                    "outputs": [{"file": w.bin(o.astype(np.float64), "op_output"), "shape": list(o.shape),
+                                 "dtype": str(o.dtype)} for o in outs],
+                    "rtol": float(getattr(case, "rtol", 1e-3) or 1e-3), "atol": float(getattr(case, "atol", 1e-7) or 1e-7),
+                })
+    return out
+
+
+def unrunnable_model(w):
+    """A graph with an operator no engine knows (custom domain), to check that loading refuses it."""
+    from onnx import TensorProto, helper
+    node = helper.make_node("FrobnicateZones", ["frames"], ["logits"], name="mystery_node", domain="org.example")
+    graph = helper.make_graph([node], "unrunnable",
+                              [helper.make_tensor_value_info("frames", TensorProto.FLOAT, ["batch", 3, 8, 8])],
+                              [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["batch", 2])])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17), helper.make_opsetid("org.example", 1)])
+    model.ir_version = 8
+    return w.bin(np.frombuffer(model.SerializeToString(), dtype=np.uint8), "unrunnable_model")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", required=True)
@@ -405,6 +465,8 @@ def main():
         "metrics": metrics_cases(args.seed + 6),
         "percentiles": percentile_cases(args.seed + 7),
         "y4m": y4m_cases(w, args.seed + 8),
+        "operators": operator_cases(w),
+        "unrunnable_model": unrunnable_model(w),
     }
     tmp = os.path.join(args.out, "index.json.tmp")
     with open(tmp, "w") as f:

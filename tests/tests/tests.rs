@@ -5,5 +5,6 @@
 
 mod cli;
 mod commands;
+mod models;
 mod reference;
 mod server;

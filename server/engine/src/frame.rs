@@ -1242,6 +1242,58 @@ mod tests {
     }
 
     #[test]
+    fn random_bytes_and_sizes_never_panic() {
+        // Property: whatever the sender claims, conversion returns a frame or an error, never a panic.
+        let mut state = 0x5EED_u64;
+        let mut next = move || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state
+        };
+        let limits = FrameLimits {
+            max_width: 64,
+            max_height: 64,
+        };
+        let mut scratch = DecodeScratch::default();
+        let mut out = RgbImage::default();
+        for _ in 0..20_000 {
+            let format = PixelFormat::ALL[(next() % 10) as usize];
+            let (w, h) = ((next() % 70) as u32, (next() % 70) as u32);
+            let stride = if next() % 3 == 0 {
+                0
+            } else {
+                (next() % 300) as u32
+            };
+            let len = (next() % 15_000) as usize;
+            let mut data: Vec<u8> = (0..len).map(|_| next() as u8).collect();
+            if format == PixelFormat::Png && next() % 2 == 0 {
+                data.splice(0..0, b"\x89PNG\r\n\x1a\n".iter().copied());
+            }
+            let region = (next() % 4 == 0).then(|| Region {
+                x: (next() % 40) as u32,
+                y: (next() % 40) as u32,
+                width: (next() % 40) as u32,
+                height: (next() % 40) as u32,
+            });
+            let frame = FrameRef {
+                format,
+                width: w,
+                height: h,
+                stride,
+                data: &data,
+            };
+            let spec = YuvSpec {
+                matrix: YuvMatrix::Bt709,
+                range: YuvRange::Full,
+            };
+            if to_rgb(&frame, region, spec, &limits, &mut scratch, &mut out).is_ok() {
+                assert_eq!(out.data.len(), out.width as usize * out.height as usize * 3);
+            }
+        }
+    }
+
+    #[test]
     fn last_row_without_padding_is_accepted() {
         let data = vec![7u8; 10 * 2 + 4];
         let frame = FrameRef {

@@ -250,3 +250,63 @@ impl Analyser {
         })
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::quality::QualityMeasures;
+
+    #[test]
+    fn an_unusable_frame_does_not_move_the_filter_or_the_decision() {
+        let settings = StreamSettings {
+            filter: FilterSpec::PassThrough,
+            decision: DecisionSpec {
+                enter: 0.6,
+                exit: 0.4,
+                dwell_ms: 0.0,
+            },
+            quality: QualitySpec {
+                min_focus: 10.0,
+                max_clipped: 0.5,
+            },
+            ..Default::default()
+        };
+        let mut s = Smoother::new(&settings, 2).expect("valid");
+        let sharp = QualityMeasures {
+            focus: 100.0,
+            dark_share: 0.0,
+            bright_share: 0.0,
+        };
+        let first = s.smooth(0.0, &[0.9, 0.1], &sharp);
+        assert_eq!(
+            first.decision,
+            Decision::Class {
+                index: 0,
+                confidence: 0.9
+            }
+        );
+        let glare = QualityMeasures {
+            focus: 100.0,
+            dark_share: 0.0,
+            bright_share: 0.8,
+        };
+        let during = s.smooth(33.0, &[0.0, 1.0], &glare);
+        assert!(!during.verdict.usable && during.verdict.badly_exposed);
+        assert_eq!(during.smoothed, vec![0.9, 0.1], "the filter kept its state");
+        assert_eq!(
+            during.decision,
+            Decision::Class {
+                index: 0,
+                confidence: 0.9
+            }
+        );
+        let blurred = QualityMeasures {
+            focus: 1.0,
+            dark_share: 0.0,
+            bright_share: 0.0,
+        };
+        assert!(s.smooth(66.0, &[0.0, 1.0], &blurred).verdict.blurred);
+        let after = s.smooth(100.0, &[0.2, 0.8], &sharp);
+        assert_eq!(after.smoothed, vec![0.2, 0.8]);
+    }
+}
