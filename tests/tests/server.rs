@@ -579,3 +579,184 @@ async fn python_clients_use_the_contract_and_the_health_protocol() {
     assert!(stdout.contains("answers: 5"), "{stdout}");
     t.server.stop().await.expect("stops");
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_metrics_endpoint_exposes_counters_and_latency_histograms() {
+    let t = start(ServerConfig {
+        metrics_listen: Some("127.0.0.1:0".parse().expect("addr")),
+        ..Default::default()
+    })
+    .await;
+    let mut rng = Rng::new(11);
+    let inputs = (0..5u64)
+        .map(|i| {
+            frame_msg(
+                i,
+                0,
+                PixelFormat::Rgb8,
+                16,
+                16,
+                noise_frame(&mut rng, 16, 16),
+            )
+        })
+        .collect();
+    converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
+        .await
+        .expect("session runs");
+    let addr = t.server.metrics_addr.expect("metrics address");
+    let mut socket = tokio::net::TcpStream::connect(addr)
+        .await
+        .expect("connects");
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    socket
+        .write_all(b"GET /metrics HTTP/1.1\r\nHost: localhost\r\n\r\n")
+        .await
+        .expect("request");
+    let mut text = String::new();
+    socket.read_to_string(&mut text).await.expect("response");
+    // Reference: the Prometheus text exposition format (counters, histograms with le buckets in seconds).
+    assert!(text.starts_with("HTTP/1.1 200 OK"), "{text}");
+    assert!(text.contains("framewise_results_total 5"), "{text}");
+    assert!(
+        text.contains("# TYPE framewise_stage_seconds histogram"),
+        "{text}"
+    );
+    assert!(
+        text.contains(r#"framewise_stage_seconds_count{stage="total"} 5"#),
+        "{text}"
+    );
+    assert!(
+        text.contains(r#"framewise_stage_seconds_bucket{stage="inference",le="+Inf"} 5"#),
+        "{text}"
+    );
+    assert!(
+        !text.contains("session=") && !text.contains("session_id"),
+        "no per-session labels"
+    );
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_idle_session_is_ended_with_a_clear_status() {
+    let t = start(ServerConfig {
+        idle_timeout_s: 0.3,
+        ..Default::default()
+    })
+    .await;
+    let mut grpc = client(&t.url).await;
+    let (tx, rx) = mpsc::channel(4);
+    tx.send(pb::SessionInput {
+        item: Some(pb::session_input::Item::Opening(opening(
+            pb::FramePolicy::EveryFrame,
+        ))),
+    })
+    .await
+    .expect("queue");
+    let mut answers = grpc
+        .converse(ReceiverStream::new(rx))
+        .await
+        .expect("opens")
+        .into_inner();
+    assert!(answers.message().await.expect("accepted").is_some());
+    let err = answers
+        .message()
+        .await
+        .expect_err("ended by the idle timeout");
+    assert_eq!(err.code(), tonic::Code::DeadlineExceeded);
+    assert!(err.message().contains("idle timeout"), "{}", err.message());
+    drop(tx);
+    t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn shutdown_goes_not_serving_refuses_new_sessions_and_lets_open_ones_finish() {
+    let t = start(ServerConfig {
+        drain_s: 5.0,
+        ..Default::default()
+    })
+    .await;
+    let channel = tonic::transport::Channel::from_shared(t.url.clone())
+        .expect("url")
+        .connect()
+        .await
+        .expect("connects");
+    let mut health = tonic_health::pb::health_client::HealthClient::new(channel);
+    let check = |name: &str| tonic_health::pb::HealthCheckRequest {
+        service: name.to_string(),
+    };
+    let serving = tonic_health::pb::health_check_response::ServingStatus::Serving as i32;
+    assert_eq!(
+        health
+            .check(check(""))
+            .await
+            .expect("health")
+            .into_inner()
+            .status,
+        serving
+    );
+
+    // An open session, then shutdown begins.
+    let mut grpc = client(&t.url).await;
+    let (tx, rx) = mpsc::channel(4);
+    tx.send(pb::SessionInput {
+        item: Some(pb::session_input::Item::Opening(opening(
+            pb::FramePolicy::EveryFrame,
+        ))),
+    })
+    .await
+    .expect("queue");
+    let mut answers = grpc
+        .converse(ReceiverStream::new(rx))
+        .await
+        .expect("opens")
+        .into_inner();
+    assert!(answers.message().await.expect("accepted").is_some());
+    let token = t.server.shutdown_token();
+    token.cancel();
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    let not_serving = tonic_health::pb::health_check_response::ServingStatus::NotServing as i32;
+    assert_eq!(
+        health
+            .check(check(""))
+            .await
+            .expect("health")
+            .into_inner()
+            .status,
+        not_serving,
+        "NOT_SERVING first"
+    );
+    let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
+        .await
+        .expect_err("new session refused");
+    assert_eq!(err.code(), tonic::Code::Unavailable);
+
+    // The open session still gets its frames answered and its summary.
+    let mut rng = Rng::new(3);
+    for seq in 0..3u64 {
+        tx.send(frame_msg(
+            seq,
+            0,
+            PixelFormat::Rgb8,
+            16,
+            16,
+            noise_frame(&mut rng, 16, 16),
+        ))
+        .await
+        .expect("frame");
+    }
+    drop(tx);
+    let mut results = 0;
+    let mut summary = false;
+    while let Some(m) = answers.message().await.expect("answers") {
+        match m.item {
+            Some(pb::session_output::Item::Answer(_)) => results += 1,
+            Some(pb::session_output::Item::Summary(_)) => summary = true,
+            _ => {}
+        }
+    }
+    assert_eq!((results, summary), (3, true));
+    tokio::time::timeout(Duration::from_secs(10), t.server.wait())
+        .await
+        .expect("stops within the deadline")
+        .expect("clean stop");
+}
