@@ -8,3 +8,4 @@ mod commands;
 mod models;
 mod reference;
 mod server;
+mod tls;
