@@ -86,6 +86,106 @@ impl FrameSource for Synthetic {
     }
 }
 
+/// Threads rendering demo frames ahead of the sender: one 640x480 frame takes about 50 ms on one core here,
+/// longer than a 30 fps frame interval.
+pub const RENDER_THREADS: usize = 2;
+
+/// Frames rendered at most this far ahead of the sender (bounds memory: 60 frames of 640x480 RGB is 55 MB).
+pub const RENDER_AHEAD: usize = 60;
+
+/// A frame source whose frames are rendered ahead on background threads, so that the sender can keep the
+/// recorded pace.
+pub struct Prefetched {
+    inner: Arc<Synthetic>,
+    state: Arc<(std::sync::Mutex<PrefetchState>, std::sync::Condvar)>,
+}
+
+#[derive(Default)]
+struct PrefetchState {
+    ready: std::collections::BTreeMap<usize, Result<FrameData, String>>,
+    /// The next frame the sender will ask for.
+    wanted: usize,
+    /// The next frame a render thread will take.
+    next: usize,
+}
+
+impl Prefetched {
+    /// Starts `threads` render threads over `source`.
+    pub fn start(source: Synthetic, threads: usize) -> Self {
+        let inner = Arc::new(source);
+        let state = Arc::new((
+            std::sync::Mutex::new(PrefetchState::default()),
+            std::sync::Condvar::new(),
+        ));
+        for _ in 0..threads.max(1) {
+            let (inner, state) = (inner.clone(), state.clone());
+            std::thread::spawn(move || {
+                loop {
+                    let i = {
+                        let (lock, cvar) = &*state;
+                        let Ok(mut st) = lock.lock() else { return };
+                        while st.next < inner.len() && st.next >= st.wanted + RENDER_AHEAD {
+                            st = match cvar.wait(st) {
+                                Ok(g) => g,
+                                Err(_) => return,
+                            };
+                        }
+                        if st.next >= inner.len() {
+                            return;
+                        }
+                        st.next += 1;
+                        st.next - 1
+                    };
+                    let frame = inner.read(i).map_err(|e| format!("{e:#}"));
+                    let (lock, cvar) = &*state;
+                    let Ok(mut st) = lock.lock() else { return };
+                    st.ready.insert(i, frame);
+                    cvar.notify_all();
+                }
+            });
+        }
+        Self { inner, state }
+    }
+}
+
+impl FrameSource for Prefetched {
+    fn len(&self) -> usize {
+        self.inner.len()
+    }
+    fn meta(&self, i: usize) -> (String, f64, Option<String>) {
+        self.inner.meta(i)
+    }
+    fn read(&self, i: usize) -> Result<FrameData> {
+        let (lock, cvar) = &*self.state;
+        let mut st = lock
+            .lock()
+            .map_err(|_| anyhow::anyhow!("the frame renderer failed"))?;
+        st.wanted = st.wanted.max(i + 1);
+        cvar.notify_all();
+        loop {
+            if let Some(frame) = st.ready.remove(&i) {
+                return frame.map_err(|e| anyhow::anyhow!(e));
+            }
+            if i >= st.next && st.next >= self.inner.len() {
+                // Never rendered (out of range): render here.
+                drop(st);
+                return self.inner.read(i);
+            }
+            if i + 1 < st.wanted {
+                // An older frame than the last one asked for (frames are handed out once): render it here.
+                drop(st);
+                return self.inner.read(i);
+            }
+            st = cvar
+                .wait(st)
+                .map_err(|_| anyhow::anyhow!("the frame renderer failed"))?;
+        }
+    }
+    fn describe(&self) -> String {
+        self.inner.describe()
+    }
+}
+
 /// Runs the demo.
 pub async fn run(mut args: DemoArgs) -> Result<()> {
     anyhow::ensure!(
@@ -117,8 +217,10 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
         "in-process server on {url}; streaming a {:.0} s synthetic sweep at {:.0} fps",
         args.seconds, args.fps
     );
-    let source: Arc<dyn FrameSource> =
-        Arc::new(Synthetic::sweep(args.seconds, args.fps, args.seed));
+    let source: Arc<dyn FrameSource> = Arc::new(Prefetched::start(
+        Synthetic::sweep(args.seconds, args.fps, args.seed),
+        RENDER_THREADS,
+    ));
     std::fs::create_dir_all(&args.out)
         .with_context(|| format!("creating {}", args.out.display()))?;
     let results_path = args.out.join("results.jsonl");

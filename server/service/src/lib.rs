@@ -27,7 +27,6 @@ use anyhow::{Context, Result};
 use framewise_proto::v1::frame_analysis_server::FrameAnalysisServer;
 use tokio::net::TcpListener;
 use tokio::task::JoinHandle;
-use tokio_stream::wrappers::TcpListenerStream;
 use tokio_util::sync::CancellationToken;
 use tonic::transport::{Certificate, Identity, ServerTlsConfig};
 
@@ -156,7 +155,10 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     let router = builder.add_service(health_service).add_service(grpc);
     let serve = {
         let transport_stop = transport_stop.clone();
-        router.serve_with_incoming_shutdown(TcpListenerStream::new(listener), async move {
+        // No Nagle delay: an answer is a small write that must leave at once.
+        let incoming =
+            tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true));
+        router.serve_with_incoming_shutdown(incoming, async move {
             transport_stop.cancelled().await;
         })
     };
