@@ -355,13 +355,7 @@ async fn one_session(
                     stride: 0,
                     data: frames[i as usize % frames.len()].clone(),
                 };
-                if tx
-                    .send(pb::SessionInput {
-                        item: Some(pb::session_input::Item::Frame(frame)),
-                    })
-                    .await
-                    .is_err()
-                {
+                if !client::send_frame(&tx, frame).await {
                     break;
                 }
             }

@@ -81,3 +81,13 @@ pub async fn open(
 pub fn status_error(status: tonic::Status) -> anyhow::Error {
     anyhow::anyhow!("server answered {:?}: {}", status.code(), status.message())
 }
+
+/// Sends one frame on a session; false when the session has ended.
+pub async fn send_frame(frames: &mpsc::Sender<pb::SessionInput>, frame: pb::Frame) -> bool {
+    frames
+        .send(pb::SessionInput {
+            item: Some(pb::session_input::Item::Frame(frame)),
+        })
+        .await
+        .is_ok()
+}

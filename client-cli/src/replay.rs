@@ -57,6 +57,37 @@ pub enum Pacing {
     Fast,
 }
 
+/// Keeps the recorded pace: frame times are measured from the first frame's.
+struct Pacer {
+    pacing: Pacing,
+    start: Instant,
+    t0: f64,
+}
+
+impl Pacer {
+    fn start(pacing: Pacing, source: &dyn FrameSource) -> Self {
+        let t0 = if source.is_empty() {
+            0.0
+        } else {
+            source.meta(0).1
+        };
+        Self {
+            pacing,
+            start: Instant::now(),
+            t0,
+        }
+    }
+
+    /// Waits until the frame recorded at `t_ms` is due.
+    async fn wait(&self, t_ms: f64) {
+        if let Pacing::Speed(speed) = self.pacing {
+            let due =
+                self.start + Duration::from_secs_f64(((t_ms - self.t0) / speed / 1000.0).max(0.0));
+            tokio::time::sleep_until(due.into()).await;
+        }
+    }
+}
+
 /// Where the engine runs.
 #[derive(Debug, Clone)]
 pub enum Target {
@@ -238,19 +269,10 @@ pub async fn replay(
             };
             write_header(&header, &mut writer)?;
             tally.header = Some(header);
-            let pace_start = Instant::now();
-            let t0 = if !source.is_empty() {
-                source.meta(0).1
-            } else {
-                0.0
-            };
+            let pacer = Pacer::start(pacing, source.as_ref());
             for i in 0..source.len() {
                 let (name, t_ms, label) = source.meta(i);
-                if let Pacing::Speed(speed) = pacing {
-                    let due = pace_start
-                        + Duration::from_secs_f64(((t_ms - t0) / speed / 1000.0).max(0.0));
-                    tokio::time::sleep_until(due.into()).await;
-                }
+                pacer.wait(t_ms).await;
                 let mut record = FrameRecord {
                     seq: i as u64,
                     name,
@@ -331,19 +353,10 @@ pub async fn replay(
             let sender = {
                 let (source, sent_at, frames) = (source.clone(), sent_at.clone(), session.frames);
                 tokio::spawn(async move {
-                    let pace_start = Instant::now();
-                    let t0 = if !source.is_empty() {
-                        source.meta(0).1
-                    } else {
-                        0.0
-                    };
+                    let pacer = Pacer::start(pacing, source.as_ref());
                     for i in 0..source.len() {
                         let (name, t_ms, label) = source.meta(i);
-                        if let Pacing::Speed(speed) = pacing {
-                            let due = pace_start
-                                + Duration::from_secs_f64(((t_ms - t0) / speed / 1000.0).max(0.0));
-                            tokio::time::sleep_until(due.into()).await;
-                        }
+                        pacer.wait(t_ms).await;
                         let data = match source.read(i) {
                             Ok(d) => d,
                             Err(e) => {
@@ -372,13 +385,7 @@ pub async fn replay(
                         if let Ok(mut m) = sent_at.lock() {
                             m.insert(i as u64, Instant::now());
                         }
-                        if frames
-                            .send(pb::SessionInput {
-                                item: Some(pb::session_input::Item::Frame(frame)),
-                            })
-                            .await
-                            .is_err()
-                        {
+                        if !client::send_frame(&frames, frame).await {
                             break;
                         }
                     }
