@@ -279,9 +279,11 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
     )
     .context("writing summary.json")?;
     let plots = crate::plot::timeline(&records.0, &records.1, &args.out.join("timeline.svg"))?;
+    let reliability =
+        crate::plot::reliability(&records.0, &report, &args.out.join("reliability.svg"))?;
     println!("results: {}", results_path.display());
     println!("summary: {}", args.out.join("summary.json").display());
-    println!("plot:    {}", plots.display());
+    println!("plots:   {} {}", plots.display(), reliability.display());
     Ok(())
 }
 

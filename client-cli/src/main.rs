@@ -88,6 +88,9 @@ struct ScoreArgs {
     /// Write the probability timeline plot (SVG) here.
     #[arg(long)]
     plot: Option<PathBuf>,
+    /// Write the reliability diagram (SVG) here.
+    #[arg(long)]
+    reliability: Option<PathBuf>,
     /// Re-run the temporal filters over a grid of parameters on the stored raw probabilities and report the
     /// trade-off between delay and switches.
     #[arg(long)]
@@ -255,6 +258,9 @@ fn score_command(args: ScoreArgs) -> Result<()> {
     }
     if let Some(path) = &args.plot {
         plot::timeline(&header, &records, path)?;
+    }
+    if let Some(path) = &args.reliability {
+        plot::reliability(&header, &report, path)?;
     }
     if args.sweep {
         let v: Vec<f64> = args

@@ -177,6 +177,86 @@ pub fn write_line<W: Write, T: Serialize>(out: &mut W, value: &T) -> std::io::Re
     out.flush()
 }
 
+/// Writes the CSV file's top: comment lines with the caution, the model identity and the settings, then the
+/// column names (raw and smoothed probability per class).
+pub fn write_csv_header<W: Write>(out: &mut W, header: &Header) -> std::io::Result<()> {
+    let m = &header.model;
+    let mut text = format!("# {}\n", header.caution);
+    text.push_str(&format!(
+        "# model {} {} sha256 {} engine {}\n",
+        m.name, m.version, m.sha256, m.engine
+    ));
+    text.push_str(&format!(
+        "# source {}; engine at {}; settings {}\n",
+        header.source, header.engine_at, header.settings
+    ));
+    let mut columns: Vec<String> = [
+        "seq",
+        "name",
+        "t_ms",
+        "label",
+        "kind",
+        "decision",
+        "confidence",
+        "usable",
+        "focus",
+        "clipped",
+        "total_us",
+        "round_trip_us",
+    ]
+    .iter()
+    .map(|c| c.to_string())
+    .collect();
+    columns.extend(header.classes.iter().map(|c| format!("raw_{c}")));
+    columns.extend(header.classes.iter().map(|c| format!("smoothed_{c}")));
+    columns.push("error".into());
+    text.push_str(&columns.join(","));
+    text.push('\n');
+    out.write_all(text.as_bytes())?;
+    out.flush()
+}
+
+/// Quotes a CSV field when it needs it (RFC 4180).
+fn csv_field(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s.to_string()
+    }
+}
+
+/// Writes one frame as a CSV row (probability columns for `classes` classes, empty when the frame has none)
+/// and flushes it.
+pub fn write_csv_row<W: Write>(
+    out: &mut W,
+    r: &FrameRecord,
+    classes: usize,
+) -> std::io::Result<()> {
+    let mut fields = vec![
+        r.seq.to_string(),
+        csv_field(&r.name),
+        format!("{}", r.t_ms),
+        csv_field(r.label.as_deref().unwrap_or("")),
+        r.kind.clone(),
+        csv_field(r.decision.as_deref().unwrap_or("")),
+        format!("{}", r.confidence),
+        r.usable.to_string(),
+        format!("{}", r.focus),
+        format!("{}", r.clipped),
+        r.timings_us.total.to_string(),
+        r.round_trip_us.to_string(),
+    ];
+    for probs in [&r.raw, &r.smoothed] {
+        fields
+            .extend((0..classes).map(|c| probs.get(c).map(|p| format!("{p}")).unwrap_or_default()));
+    }
+    fields.push(csv_field(r.error.as_deref().unwrap_or("")));
+    let mut line = fields.join(",");
+    line.push('\n');
+    out.write_all(line.as_bytes())?;
+    out.flush()
+}
+
 /// Prints an aligned table: a header row, then rows.
 pub fn table(headers: &[&str], rows: &[Vec<String>]) -> String {
     let mut widths: Vec<usize> = headers.iter().map(|h| h.chars().count()).collect();

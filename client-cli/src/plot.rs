@@ -336,3 +336,115 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
     std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
     Ok(path.to_path_buf())
 }
+
+/// Reliability diagram: accuracy against mean top-class probability per bin, raw and smoothed, with the
+/// diagonal of perfect calibration; marker area follows the bin's frame count.
+pub fn reliability(header: &Header, report: &crate::score::Report, path: &Path) -> Result<PathBuf> {
+    let (w, h) = (640.0, 620.0);
+    let (left, top, side) = (80.0, 50.0, 460.0);
+    let x = |v: f64| left + v * side;
+    let y = |v: f64| top + (1.0 - v) * side;
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
+    );
+    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let _ = writeln!(
+        s,
+        r#"<text x="{left}" y="24" font-size="15">Reliability diagram (10 equal-width bins of the top-class probability)</text>"#
+    );
+    for k in 0..=5 {
+        let v = k as f64 / 5.0;
+        let _ = writeln!(
+            s,
+            r##"<line x1="{0}" x2="{0}" y1="{top}" y2="{1}" stroke="#eee"/><line x1="{left}" x2="{2}" y1="{3}" y2="{3}" stroke="#eee"/><text x="{0}" y="{4}" text-anchor="middle">{v:.1}</text><text x="{5}" y="{6}" text-anchor="end">{v:.1}</text>"##,
+            x(v),
+            top + side,
+            left + side,
+            y(v),
+            top + side + 16.0,
+            left - 6.0,
+            y(v) + 4.0
+        );
+    }
+    let _ = writeln!(
+        s,
+        r##"<line x1="{}" y1="{}" x2="{}" y2="{}" stroke="#999" stroke-dasharray="4 4"/>"##,
+        x(0.0),
+        y(0.0),
+        x(1.0),
+        y(1.0)
+    );
+    let _ = writeln!(
+        s,
+        r#"<text x="{}" y="{}" text-anchor="middle">mean top-class probability</text>"#,
+        left + side / 2.0,
+        top + side + 34.0
+    );
+    let _ = writeln!(
+        s,
+        r#"<text x="20" y="{0}" transform="rotate(-90 20 {0})" text-anchor="middle">share correct</text>"#,
+        top + side / 2.0
+    );
+    for (i, (name, metrics)) in [("raw", &report.raw), ("smoothed", &report.smoothed)]
+        .iter()
+        .enumerate()
+    {
+        let colour = PALETTE[i];
+        let total = metrics.frames.max(1) as f64;
+        let points: Vec<_> = metrics.calibration.iter().filter(|b| b.count > 0).collect();
+        let d: String = points
+            .iter()
+            .enumerate()
+            .map(|(k, b)| {
+                format!(
+                    "{}{:.1},{:.1} ",
+                    if k == 0 { "M" } else { "L" },
+                    x(b.mean_confidence),
+                    y(b.accuracy)
+                )
+            })
+            .collect();
+        let _ = writeln!(
+            s,
+            r#"<path d="{d}" fill="none" stroke="{colour}" stroke-width="2"/>"#
+        );
+        for b in &points {
+            let r = 3.0 + 12.0 * (b.count as f64 / total).sqrt();
+            let _ = writeln!(
+                s,
+                r#"<circle cx="{:.1}" cy="{:.1}" r="{r:.1}" fill="{colour}" opacity="0.5"/>"#,
+                x(b.mean_confidence),
+                y(b.accuracy)
+            );
+        }
+        let _ = writeln!(
+            s,
+            r#"<rect x="{}" y="{}" width="14" height="14" fill="{colour}"/><text x="{}" y="{}">{name} (ECE {:.3})</text>"#,
+            left + 10.0,
+            top + 10.0 + i as f64 * 20.0,
+            left + 30.0,
+            top + 22.0 + i as f64 * 20.0,
+            metrics.ece
+        );
+    }
+    let m = &header.model;
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {}</text>"##,
+        h - 30.0,
+        escape(&m.name),
+        escape(&m.version),
+        escape(&m.sha256)
+    );
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
+        h - 12.0,
+        escape(CAUTION_SHORT)
+    );
+    s.push_str("</svg>\n");
+    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
+    Ok(path.to_path_buf())
+}

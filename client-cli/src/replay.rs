@@ -181,6 +181,13 @@ pub async fn replay(
     mut on_record: impl FnMut(&FrameRecord) + Send,
 ) -> Result<ReplayTally> {
     let started = Instant::now();
+    // A `.csv` output gets CSV rows (caution and model identity in comment lines at the top); anything else
+    // JSON Lines.
+    let csv = out.is_some_and(|p| p.extension().is_some_and(|e| e.eq_ignore_ascii_case("csv")));
+    if csv && resume {
+        bail!("--resume needs a JSON Lines output (.jsonl); CSV output cannot be resumed");
+    }
+    let csv_classes = std::sync::atomic::AtomicUsize::new(0);
     let (done, old_header) = match (out, resume) {
         (Some(path), true) => existing_output(path)?,
         _ => (HashSet::new(), None),
@@ -221,7 +228,12 @@ pub async fn replay(
         }
         on_record(&record);
         if !done.contains(&record.seq) {
-            output::write_line(writer, &record).context("writing the output")?;
+            if csv {
+                let classes = csv_classes.load(std::sync::atomic::Ordering::Relaxed);
+                output::write_csv_row(writer, &record, classes).context("writing the output")?;
+            } else {
+                output::write_line(writer, &record).context("writing the output")?;
+            }
             tally.written += 1;
         }
         Ok(())
@@ -241,7 +253,12 @@ pub async fn replay(
             }
             return Ok(());
         }
-        output::write_line(writer, header).context("writing the header")
+        if csv {
+            csv_classes.store(header.classes.len(), std::sync::atomic::Ordering::Relaxed);
+            output::write_csv_header(writer, header).context("writing the header")
+        } else {
+            output::write_line(writer, header).context("writing the header")
+        }
     };
     match target {
         Target::Offline { model } => {

@@ -291,3 +291,58 @@ async fn on_the_demo_sweep_smoothed_calls_change_far_less_often_than_raw_arg_max
     );
     assert!(report.raw.accuracy > 0.0 && report.smoothed.accuracy > 0.0);
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn csv_output_carries_the_caution_and_the_same_numbers_as_json_lines() {
+    let dir = tempdir("csv");
+    let rec_dir = dir.join("rec");
+    let _ = synthetic_recording(&rec_dir, 1.0);
+    std::fs::write(rec_dir.join("frame_000002.png"), b"broken").expect("corrupt a frame");
+    let source: Arc<dyn FrameSource> = Arc::new(Recording::open(&rec_dir).expect("opens"));
+    let (json, csv) = (dir.join("out.jsonl"), dir.join("out.csv"));
+    for out in [&json, &csv] {
+        replay::replay(
+            source.clone(),
+            &Target::Offline { model: None },
+            &flags(),
+            Pacing::Fast,
+            Some(out),
+            false,
+            |_| {},
+        )
+        .await
+        .expect("replay runs");
+    }
+    let text = std::fs::read_to_string(&csv).expect("csv");
+    let mut lines = text.lines();
+    assert!(
+        lines
+            .next()
+            .expect("caution line")
+            .contains("Decision support only")
+    );
+    assert!(lines.next().expect("model line").contains("sha256"));
+    lines.next().expect("settings line");
+    let columns: Vec<&str> = lines.next().expect("column names").split(',').collect();
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    assert_eq!(rows.len(), source.len());
+    assert!(
+        rows.iter().all(|r| r.len() == columns.len()),
+        "every row has every column"
+    );
+    let raw_plain = columns
+        .iter()
+        .position(|c| *c == "raw_plain")
+        .expect("raw_plain column");
+    let jsonl = comparable(&json);
+    for (row, line) in rows.iter().zip(&jsonl[1..]) {
+        let from_json = line["raw"]
+            .as_array()
+            .and_then(|v| v.first())
+            .and_then(|v| v.as_f64());
+        match from_json {
+            Some(v) => assert_eq!(row[raw_plain].parse::<f32>().expect("number"), v as f32),
+            None => assert_eq!(row[raw_plain], "", "an error row has empty probabilities"),
+        }
+    }
+}

@@ -30,6 +30,8 @@ pub struct FrameMetrics {
     pub confusion: Vec<Vec<u64>>,
     /// Expected calibration error (10 equal-width bins of the top probability).
     pub ece: f64,
+    /// The reliability diagram's bins.
+    pub calibration: Vec<CalibrationBin>,
 }
 
 /// Over-time metrics of a sequence of calls.
@@ -96,30 +98,52 @@ pub fn roc_auc(scores: &[f64], positive: &[bool]) -> Option<f64> {
     Some(u / (n_pos * n_neg) as f64)
 }
 
-/// Expected calibration error of top-class probabilities over equal-width bins.
-pub fn expected_calibration_error(confidence: &[f64], correct: &[bool], bins: usize) -> f64 {
-    let n = confidence.len();
-    if n == 0 {
-        return 0.0;
-    }
+/// One bin of a reliability diagram.
+#[derive(Debug, Clone, Copy, Serialize, PartialEq)]
+pub struct CalibrationBin {
+    /// Frames in the bin.
+    pub count: usize,
+    /// Mean top-class probability of those frames.
+    pub mean_confidence: f64,
+    /// Share of those frames whose top class is right.
+    pub accuracy: f64,
+}
+
+/// Equal-width bins of top-class probabilities with their accuracy (empty bins have a count of 0), binned as
+/// scikit-learn's calibration_curve does (np.linspace edges, np.searchsorted on the inner edges).
+pub fn calibration_bins(confidence: &[f64], correct: &[bool], bins: usize) -> Vec<CalibrationBin> {
     let mut sum_conf = vec![0.0; bins];
     let mut sum_acc = vec![0.0; bins];
     let mut count = vec![0usize; bins];
+    let step = 1.0 / bins as f64;
     for (c, ok) in confidence.iter().zip(correct) {
-        // The bin of `c` among equal-width edges k/bins, edges computed and compared as scikit-learn's
-        // calibration_curve does (np.linspace edges, np.searchsorted on the inner edges).
-        let step = 1.0 / bins as f64;
         let b = (1..bins).filter(|&k| k as f64 * step < *c).count();
         sum_conf[b] += c;
         sum_acc[b] += f64::from(u8::from(*ok));
         count[b] += 1;
     }
     (0..bins)
-        .filter(|&b| count[b] > 0)
         .map(|b| {
-            (count[b] as f64 / n as f64)
-                * (sum_acc[b] / count[b] as f64 - sum_conf[b] / count[b] as f64).abs()
+            let n = count[b].max(1) as f64;
+            CalibrationBin {
+                count: count[b],
+                mean_confidence: sum_conf[b] / n,
+                accuracy: sum_acc[b] / n,
+            }
         })
+        .collect()
+}
+
+/// Expected calibration error of top-class probabilities over equal-width bins.
+pub fn expected_calibration_error(confidence: &[f64], correct: &[bool], bins: usize) -> f64 {
+    let n = confidence.len();
+    if n == 0 {
+        return 0.0;
+    }
+    calibration_bins(confidence, correct, bins)
+        .iter()
+        .filter(|b| b.count > 0)
+        .map(|b| (b.count as f64 / n as f64) * (b.accuracy - b.mean_confidence).abs())
         .sum()
 }
 
@@ -168,6 +192,7 @@ pub fn frame_metrics(probs: &[Vec<f32>], labels: &[usize], k: usize) -> FrameMet
         roc_auc: roc,
         confusion,
         ece: expected_calibration_error(&confidence, &correct, CALIBRATION_BINS),
+        calibration: calibration_bins(&confidence, &correct, CALIBRATION_BINS),
     }
 }
 
