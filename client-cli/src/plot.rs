@@ -14,6 +14,46 @@ pub const PALETTE: [&str; 8] = [
     "#1b6ca8", "#d1495b", "#2a9d8f", "#e9a23b", "#6d597a", "#5c946e", "#b5838d", "#3d405b",
 ];
 
+/// Starts an SVG document on a white background.
+fn svg_open(w: f64, h: f64) -> String {
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
+    );
+    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    s
+}
+
+/// The model's identity as a plot footer shows it.
+fn model_text(name: &str, version: &str, sha256: &str, engine: &str) -> String {
+    format!("model {name} {version} sha256 {sha256} ({engine})")
+}
+
+/// A string field of a JSON model identity, or "?".
+fn model_field<'a>(model: &'a serde_json::Value, key: &str) -> &'a str {
+    model[key].as_str().unwrap_or("?")
+}
+
+/// Ends the document with the footer every plot carries (the model's identity and the caution) and writes it.
+fn svg_finish(mut s: String, left: f64, h: f64, model: &str, path: &Path) -> Result<PathBuf> {
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#555">{}</text>"##,
+        h - 30.0,
+        escape(model)
+    );
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
+        h - 12.0,
+        escape(CAUTION_SHORT)
+    );
+    s.push_str("</svg>\n");
+    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
+    Ok(path.to_path_buf())
+}
+
 fn escape(s: &str) -> String {
     s.replace('&', "&amp;")
         .replace('<', "&lt;")
@@ -34,12 +74,7 @@ pub fn timeline(header: &Header, records: &[FrameRecord], path: &Path) -> Result
     let y = |p: f64| top + (1.0 - p) * plot_h;
     let classes = &header.classes;
     let colour = |i: usize| PALETTE[i % PALETTE.len()];
-    let mut s = String::new();
-    let _ = writeln!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
-    );
-    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let mut s = svg_open(w, h);
     let _ = writeln!(
         s,
         r#"<text x="{left}" y="22" font-size="15">Class probabilities over time: {}</text>"#,
@@ -133,25 +168,18 @@ pub fn timeline(header: &Header, records: &[FrameRecord], path: &Path) -> Result
         left,
         ly + 36.0
     );
-    let m = &header.model;
-    let _ = writeln!(
+    svg_finish(
         s,
-        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {} ({})</text>"##,
-        h - 30.0,
-        escape(&m.name),
-        escape(&m.version),
-        escape(&m.sha256),
-        escape(&m.engine)
-    );
-    let _ = writeln!(
-        s,
-        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
-        h - 12.0,
-        escape(CAUTION_SHORT)
-    );
-    s.push_str("</svg>\n");
-    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
-    Ok(path.to_path_buf())
+        left,
+        h,
+        &model_text(
+            &header.model.name,
+            &header.model.version,
+            &header.model.sha256,
+            &header.model.engine,
+        ),
+        path,
+    )
 }
 
 /// End-to-end latency by percentile (x: percentile on a log scale of 1/(1-q), as latency work shows tails),
@@ -173,12 +201,7 @@ pub fn percentiles(
     let vmax = values.iter().copied().fold(1.0, f64::max) * 1.1;
     let x = |i: usize| left + i as f64 / 400.0 * (w - left - right);
     let y = |v: f64| top + (1.0 - v / vmax) * plot_h;
-    let mut s = String::new();
-    let _ = writeln!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{hgt}" font-family="sans-serif" font-size="12">"#
-    );
-    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let mut s = svg_open(w, hgt);
     let _ = writeln!(
         s,
         r#"<text x="{left}" y="22" font-size="15">End-to-end latency by percentile: {} sessions x {} fps, {}</text>"#,
@@ -229,24 +252,18 @@ pub fn percentiles(
         r#"<path d="{d}" fill="none" stroke="{}" stroke-width="2"/>"#,
         PALETTE[0]
     );
-    let model = &report.model;
-    let _ = writeln!(
+    svg_finish(
         s,
-        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {}</text>"##,
-        hgt - 30.0,
-        escape(model["name"].as_str().unwrap_or("?")),
-        escape(model["version"].as_str().unwrap_or("?")),
-        escape(model["sha256"].as_str().unwrap_or("?"))
-    );
-    let _ = writeln!(
-        s,
-        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
-        hgt - 12.0,
-        escape(CAUTION_SHORT)
-    );
-    s.push_str("</svg>\n");
-    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
-    Ok(path.to_path_buf())
+        left,
+        hgt,
+        &model_text(
+            model_field(&report.model, "name"),
+            model_field(&report.model, "version"),
+            model_field(&report.model, "sha256"),
+            model_field(&report.model, "engine"),
+        ),
+        path,
+    )
 }
 
 /// The sweep's trade-off: median delay to a correct call against switches per minute, one point per filter.
@@ -265,12 +282,7 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
     let ymax = ys.iter().copied().fold(1.0, f64::max) * 1.1;
     let x = |v: f64| left + v / xmax * (w - left - right);
     let y = |v: f64| top + (1.0 - v / ymax) * (h - top - bottom);
-    let mut s = String::new();
-    let _ = writeln!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
-    );
-    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let mut s = svg_open(w, h);
     let _ = writeln!(
         s,
         r#"<text x="{left}" y="22" font-size="15">Temporal filter sweep: delay against switches ({})</text>"#,
@@ -317,24 +329,18 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
             escape(&p.filter)
         );
     }
-    let m = &header.model;
-    let _ = writeln!(
+    svg_finish(
         s,
-        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {}</text>"##,
-        h - 30.0,
-        escape(&m.name),
-        escape(&m.version),
-        escape(&m.sha256)
-    );
-    let _ = writeln!(
-        s,
-        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
-        h - 12.0,
-        escape(CAUTION_SHORT)
-    );
-    s.push_str("</svg>\n");
-    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
-    Ok(path.to_path_buf())
+        left,
+        h,
+        &model_text(
+            &header.model.name,
+            &header.model.version,
+            &header.model.sha256,
+            &header.model.engine,
+        ),
+        path,
+    )
 }
 
 /// Reliability diagram: accuracy against mean top-class probability per bin, raw and smoothed, with the
@@ -344,12 +350,7 @@ pub fn reliability(header: &Header, report: &crate::score::Report, path: &Path) 
     let (left, top, side) = (80.0, 50.0, 460.0);
     let x = |v: f64| left + v * side;
     let y = |v: f64| top + (1.0 - v) * side;
-    let mut s = String::new();
-    let _ = writeln!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" font-family="sans-serif" font-size="12">"#
-    );
-    let _ = writeln!(s, r#"<rect width="100%" height="100%" fill="white"/>"#);
+    let mut s = svg_open(w, h);
     let _ = writeln!(
         s,
         r#"<text x="{left}" y="24" font-size="15">Reliability diagram (10 equal-width bins of the top-class probability)</text>"#
@@ -429,22 +430,16 @@ pub fn reliability(header: &Header, report: &crate::score::Report, path: &Path) 
             metrics.ece
         );
     }
-    let m = &header.model;
-    let _ = writeln!(
+    svg_finish(
         s,
-        r##"<text x="{left}" y="{}" fill="#555">model {} {} sha256 {}</text>"##,
-        h - 30.0,
-        escape(&m.name),
-        escape(&m.version),
-        escape(&m.sha256)
-    );
-    let _ = writeln!(
-        s,
-        r##"<text x="{left}" y="{}" fill="#a00">{}</text>"##,
-        h - 12.0,
-        escape(CAUTION_SHORT)
-    );
-    s.push_str("</svg>\n");
-    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
-    Ok(path.to_path_buf())
+        left,
+        h,
+        &model_text(
+            &header.model.name,
+            &header.model.version,
+            &header.model.sha256,
+            &header.model.engine,
+        ),
+        path,
+    )
 }
