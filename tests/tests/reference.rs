@@ -91,6 +91,17 @@ fn format_of(name: &str) -> PixelFormat {
     PixelFormat::from_name(name).expect("known format")
 }
 
+/// The raw frame a fixture case describes.
+fn frame_of<'a>(case: &Value, data: &'a [u8]) -> FrameRef<'a> {
+    FrameRef {
+        format: format_of(case["format"].as_str().expect("format")),
+        width: case["width"].as_u64().expect("w") as u32,
+        height: case["height"].as_u64().expect("h") as u32,
+        stride: case["stride"].as_u64().expect("stride") as u32,
+        data,
+    }
+}
+
 fn region_of(v: &Value) -> Option<Region> {
     if v.is_null() {
         return None;
@@ -110,13 +121,7 @@ fn colour_conversion_matches_opencv_and_the_standards() {
     for case in index()["whole_path"].as_array().expect("cases") {
         let format = format_of(case["format"].as_str().expect("format"));
         let data = read_bytes(case["frame"].as_str().expect("frame"));
-        let frame = FrameRef {
-            format,
-            width: case["width"].as_u64().expect("w") as u32,
-            height: case["height"].as_u64().expect("h") as u32,
-            stride: case["stride"].as_u64().expect("stride") as u32,
-            data: &data,
-        };
+        let frame = frame_of(case, &data);
         let region = region_of(&case["region"]);
         let convert = |spec: YuvSpec| {
             let mut out = RgbImage::default();
@@ -190,13 +195,7 @@ fn whole_path_matches_the_opencv_onnxruntime_reference() {
     for case in index()["whole_path"].as_array().expect("cases") {
         let format = format_of(case["format"].as_str().expect("format"));
         let data = read_bytes(case["frame"].as_str().expect("frame"));
-        let frame = FrameRef {
-            format,
-            width: case["width"].as_u64().expect("w") as u32,
-            height: case["height"].as_u64().expect("h") as u32,
-            stride: case["stride"].as_u64().expect("stride") as u32,
-            data: &data,
-        };
+        let frame = frame_of(case, &data);
         let spec = FrameSpec {
             region: region_of(&case["region"]),
             ..Default::default()

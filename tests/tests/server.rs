@@ -98,6 +98,30 @@ async fn converse(
     Ok(out)
 }
 
+/// Opens an every-frame session and keeps it open: the frame sender and the answers after SessionAccepted.
+async fn open_held(
+    url: &str,
+) -> (
+    mpsc::Sender<pb::SessionInput>,
+    tonic::Streaming<pb::SessionOutput>,
+) {
+    let mut grpc = client(url).await;
+    let (tx, rx) = mpsc::channel(4);
+    let first = pb::SessionInput {
+        item: Some(pb::session_input::Item::Opening(opening(
+            pb::FramePolicy::EveryFrame,
+        ))),
+    };
+    tx.send(first).await.expect("queue");
+    let mut answers = grpc
+        .converse(ReceiverStream::new(rx))
+        .await
+        .expect("session opens")
+        .into_inner();
+    assert!(answers.message().await.expect("accepted").is_some());
+    (tx, answers)
+}
+
 fn answers(outputs: &[pb::SessionOutput]) -> Vec<&pb::Answer> {
     outputs
         .iter()
@@ -442,21 +466,7 @@ async fn openings_are_checked_and_limits_hold() {
     })
     .await;
     // A session that stays open holds the only place.
-    let mut grpc = client(&t.url).await;
-    let (tx, rx) = mpsc::channel(4);
-    tx.send(pb::SessionInput {
-        item: Some(pb::session_input::Item::Opening(opening(
-            pb::FramePolicy::EveryFrame,
-        ))),
-    })
-    .await
-    .expect("queue");
-    let mut held = grpc
-        .converse(ReceiverStream::new(rx))
-        .await
-        .expect("first session opens")
-        .into_inner();
-    assert!(held.message().await.expect("accepted").is_some());
+    let (tx, mut held) = open_held(&t.url).await;
     let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
         .await
         .expect_err("second session refused");
@@ -643,21 +653,7 @@ async fn an_idle_session_is_ended_with_a_clear_status() {
         ..Default::default()
     })
     .await;
-    let mut grpc = client(&t.url).await;
-    let (tx, rx) = mpsc::channel(4);
-    tx.send(pb::SessionInput {
-        item: Some(pb::session_input::Item::Opening(opening(
-            pb::FramePolicy::EveryFrame,
-        ))),
-    })
-    .await
-    .expect("queue");
-    let mut answers = grpc
-        .converse(ReceiverStream::new(rx))
-        .await
-        .expect("opens")
-        .into_inner();
-    assert!(answers.message().await.expect("accepted").is_some());
+    let (tx, mut answers) = open_held(&t.url).await;
     let err = answers
         .message()
         .await
@@ -696,21 +692,7 @@ async fn shutdown_goes_not_serving_refuses_new_sessions_and_lets_open_ones_finis
     );
 
     // An open session, then shutdown begins.
-    let mut grpc = client(&t.url).await;
-    let (tx, rx) = mpsc::channel(4);
-    tx.send(pb::SessionInput {
-        item: Some(pb::session_input::Item::Opening(opening(
-            pb::FramePolicy::EveryFrame,
-        ))),
-    })
-    .await
-    .expect("queue");
-    let mut answers = grpc
-        .converse(ReceiverStream::new(rx))
-        .await
-        .expect("opens")
-        .into_inner();
-    assert!(answers.message().await.expect("accepted").is_some());
+    let (tx, mut answers) = open_held(&t.url).await;
     let token = t.server.shutdown_token();
     token.cancel();
     tokio::time::sleep(Duration::from_millis(200)).await;
