@@ -42,6 +42,9 @@ pub struct DemoArgs {
     /// Session settings.
     #[command(flatten)]
     pub session: SessionFlags,
+    /// Engine of the in-process server.
+    #[command(flatten)]
+    pub engine: crate::settings::EngineFlags,
 }
 
 /// The synthetic sweep as a frame source (frames rendered on demand).
@@ -205,8 +208,12 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
     eprintln!(
         "The demo model is a toy trained on an invented bench-top phantom; it is not a medical model."
     );
+    let engine = args.engine.options();
     let config = framewise_server::ServerConfig {
         listen: "127.0.0.1:0".parse()?,
+        engine: engine.kind,
+        onnxruntime_library: engine.onnxruntime_library.clone(),
+        inference_threads: engine.threads,
         ..Default::default()
     };
     let server = framewise_server::start(config, None)

@@ -66,6 +66,9 @@ struct ReplayArgs {
     /// Model package for --offline (default: the embedded demo model).
     #[arg(long, requires = "offline")]
     model: Option<PathBuf>,
+    /// Engine for --offline.
+    #[command(flatten)]
+    engine: settings::EngineFlags,
     /// Pace: the recorded timestamps divided by this factor; 0 sends as fast as answers come back.
     #[arg(long, default_value_t = 0.0)]
     speed: f64,
@@ -177,6 +180,7 @@ async fn replay_command(args: ReplayArgs) -> Result<()> {
     let target = if args.offline {
         replay::Target::Offline {
             model: args.model.clone(),
+            engine: args.engine.options(),
         }
     } else {
         replay::Target::Server {

@@ -94,7 +94,10 @@ pub enum Target {
     /// A server at this URL, with an optional token.
     Server { url: String, token: Option<String> },
     /// In this process, with this model package (or the embedded demo model).
-    Offline { model: Option<PathBuf> },
+    Offline {
+        model: Option<PathBuf>,
+        engine: framewise_engine::EngineOptions,
+    },
 }
 
 /// What a replay did.
@@ -119,7 +122,10 @@ pub struct ReplayTally {
 }
 
 /// Loads the model for offline runs.
-pub fn load_offline_model(path: Option<&Path>) -> Result<Arc<Model>> {
+pub fn load_offline_model(
+    path: Option<&Path>,
+    engine: &framewise_engine::EngineOptions,
+) -> Result<Arc<Model>> {
     let package = match path {
         Some(p) => ModelPackage::read(p)
             .with_context(|| format!("reading the model package {}", p.display()))?,
@@ -128,7 +134,7 @@ pub fn load_offline_model(path: Option<&Path>) -> Result<Arc<Model>> {
             framewise_models_demo::package::DEMO_ONNX,
         )?,
     };
-    Ok(Arc::new(Model::load(&package, None)?))
+    Ok(Arc::new(Model::load_with(&package, None, engine)?))
 }
 
 /// Seqs already written to `path` (whole lines only); truncates a torn last line. Returns the header too.
@@ -261,8 +267,8 @@ pub async fn replay(
         }
     };
     match target {
-        Target::Offline { model } => {
-            let model = load_offline_model(model.as_deref())?;
+        Target::Offline { model, engine } => {
+            let model = load_offline_model(model.as_deref(), engine)?;
             let plan =
                 framewise_server::convert::session_plan(&opening, &model, Default::default())
                     .map_err(|e| anyhow::anyhow!("{e}"))?;

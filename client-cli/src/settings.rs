@@ -5,6 +5,33 @@ use anyhow::{Context, Result, bail};
 use clap::Args;
 use framewise_proto::v1 as pb;
 
+/// The inference engine for the offline engine and the demo's in-process server.
+#[derive(Debug, Clone, Args)]
+pub struct EngineFlags {
+    /// Inference engine: tract (built in), onnxruntime (needs libonnxruntime.so) or auto (onnxruntime when its
+    /// library loads, tract otherwise).
+    #[arg(long, default_value = "tract")]
+    pub engine: framewise_engine::EngineKind,
+    /// ONNX Runtime's shared library, libonnxruntime.so (default: $ORT_DYLIB_PATH, then the system's search
+    /// path).
+    #[arg(long)]
+    pub onnxruntime_library: Option<std::path::PathBuf>,
+    /// Threads per inference.
+    #[arg(long, default_value_t = 1)]
+    pub inference_threads: usize,
+}
+
+impl EngineFlags {
+    /// The engine options these flags ask for.
+    pub fn options(&self) -> framewise_engine::EngineOptions {
+        framewise_engine::EngineOptions {
+            kind: self.engine,
+            onnxruntime_library: self.onnxruntime_library.clone(),
+            threads: self.inference_threads.max(1),
+        }
+    }
+}
+
 /// Session settings shared by replay, demo and bench.
 #[derive(Debug, Clone, Args)]
 pub struct SessionFlags {

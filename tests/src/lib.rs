@@ -6,7 +6,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::{Arc, OnceLock};
 
-use framewise_engine::{Model, ModelPackage};
+use framewise_engine::{EngineKind, EngineOptions, Model, ModelPackage};
 
 /// The seeded generator the tests draw random frames from.
 pub use framewise_models_demo::rng::SplitMix64 as Rng;
@@ -28,17 +28,65 @@ pub fn python() -> PathBuf {
     }
 }
 
-/// The embedded demo model, loaded once.
+/// The embedded demo package.
+pub fn demo_package() -> ModelPackage {
+    ModelPackage::from_parts(
+        framewise_models_demo::package::DEMO_MANIFEST,
+        framewise_models_demo::package::DEMO_ONNX,
+    )
+    .expect("the embedded demo package parses")
+}
+
+/// The embedded demo model on tract, loaded once.
 pub fn demo_model() -> Arc<Model> {
     static MODEL: OnceLock<Arc<Model>> = OnceLock::new();
     MODEL
         .get_or_init(|| {
-            let package = ModelPackage::from_parts(
-                framewise_models_demo::package::DEMO_MANIFEST,
-                framewise_models_demo::package::DEMO_ONNX,
-            )
-            .expect("the embedded demo package parses");
-            Arc::new(Model::load(&package, None).expect("the embedded demo model loads"))
+            Arc::new(Model::load(&demo_package(), None).expect("the embedded demo model loads"))
+        })
+        .clone()
+}
+
+/// ONNX Runtime's shared library from the reference venv's `onnxruntime` wheel (`onnxruntime/capi/`), found
+/// once by asking that Python where the package lives.
+pub fn onnxruntime_library() -> PathBuf {
+    static PATH: OnceLock<PathBuf> = OnceLock::new();
+    PATH.get_or_init(|| {
+        let out = Command::new(python())
+            .args([
+                "-c",
+                "import glob, os, onnxruntime; \
+                 d = os.path.join(os.path.dirname(onnxruntime.__file__), 'capi'); \
+                 print(sorted(glob.glob(os.path.join(d, 'libonnxruntime.so*')))[-1])",
+            ])
+            .output()
+            .expect("the reference Python runs");
+        assert!(
+            out.status.success(),
+            "no libonnxruntime.so in the reference venv: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        PathBuf::from(String::from_utf8_lossy(&out.stdout).trim())
+    })
+    .clone()
+}
+
+/// Engine options for ONNX Runtime with the reference venv's library.
+pub fn onnxruntime_options(threads: usize) -> EngineOptions {
+    EngineOptions {
+        kind: EngineKind::OnnxRuntime,
+        onnxruntime_library: Some(onnxruntime_library()),
+        threads,
+    }
+}
+
+/// The embedded demo model on ONNX Runtime, loaded once.
+pub fn demo_model_onnxruntime() -> Arc<Model> {
+    static MODEL: OnceLock<Arc<Model>> = OnceLock::new();
+    MODEL
+        .get_or_init(|| {
+            let model = Model::load_with(&demo_package(), None, &onnxruntime_options(1));
+            Arc::new(model.expect("the embedded demo model loads on ONNX Runtime"))
         })
         .clone()
 }

@@ -93,7 +93,10 @@ async fn replay_through_the_server_equals_offline_and_resumes_without_duplicates
     let offline = dir.join("offline.jsonl");
     replay::replay(
         source.clone(),
-        &Target::Offline { model: None },
+        &Target::Offline {
+            model: None,
+            engine: Default::default(),
+        },
         &flags(),
         Pacing::Fast,
         Some(&offline),
@@ -149,7 +152,10 @@ async fn unreadable_frames_are_reported_and_the_rest_goes_on() {
     let out = dir.join("out.jsonl");
     let tally = replay::replay(
         source.clone(),
-        &Target::Offline { model: None },
+        &Target::Offline {
+            model: None,
+            engine: Default::default(),
+        },
         &flags(),
         Pacing::Fast,
         Some(&out),
@@ -263,7 +269,10 @@ async fn on_the_demo_sweep_smoothed_calls_change_far_less_often_than_raw_arg_max
     };
     replay::replay(
         source,
-        &Target::Offline { model: None },
+        &Target::Offline {
+            model: None,
+            engine: Default::default(),
+        },
         &flags,
         Pacing::Fast,
         Some(&out),
@@ -303,7 +312,10 @@ async fn csv_output_carries_the_caution_and_the_same_numbers_as_json_lines() {
     for out in [&json, &csv] {
         replay::replay(
             source.clone(),
-            &Target::Offline { model: None },
+            &Target::Offline {
+                model: None,
+                engine: Default::default(),
+            },
             &flags(),
             Pacing::Fast,
             Some(out),

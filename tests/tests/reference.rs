@@ -9,9 +9,13 @@ use framewise_engine::pipeline::{self, FrameSpec, Scratch};
 use framewise_engine::preprocess::{Preprocessor, luma_of};
 use framewise_engine::quality::laplacian_variance;
 use framewise_engine::{
-    FrameRef, Model, ModelPackage, PixelFormat, Region, YuvMatrix, YuvRange, YuvSpec,
+    EngineKind, EngineOptions, FrameRef, Model, ModelPackage, PixelFormat, Region, YuvMatrix,
+    YuvRange, YuvSpec,
 };
-use framewise_tests::{byte_diff, demo_model, fixtures, index, max_abs_diff, read_bytes, read_f32};
+use framewise_tests::{
+    byte_diff, demo_model, demo_model_onnxruntime, fixtures, index, max_abs_diff,
+    onnxruntime_options, read_bytes, read_f32,
+};
 use serde_json::Value;
 
 fn floats(v: &Value) -> Vec<f64> {
@@ -47,15 +51,64 @@ fn demo_model_equals_onnxruntime() {
 }
 
 #[test]
-fn bench_model_equals_onnxruntime() {
+fn demo_model_on_the_onnxruntime_engine_equals_python_onnxruntime() {
+    let model = demo_model_onnxruntime();
+    assert_eq!(model.identity().engine, "onnxruntime");
+    // Reference: Python onnxruntime on the same tensors (the same library, called through its C API here).
+    let worst = check_inference(&model, &index()["inference"]["demo"], 1e-6);
+    eprintln!("demo model: max |framewise onnxruntime engine - Python onnxruntime| = {worst:e}");
+}
+
+#[test]
+fn bench_model_equals_onnxruntime_on_every_engine_and_thread_count() {
     let package = ModelPackage::read(&fixtures().join("bench-model")).expect("bench package reads");
     let model = Model::load(&package, None).expect("bench model loads");
     assert!(
         model.can_batch(),
         "the bench model has a symbolic batch dimension"
     );
-    let worst = check_inference(&model, &index()["inference"]["bench"], 1e-4);
+    let cases = &index()["inference"]["bench"];
+    let worst = check_inference(&model, cases, 1e-4);
     eprintln!("bench model: max |tract - onnxruntime| = {worst:e}");
+    let two = Model::load_with(
+        &package,
+        None,
+        &EngineOptions {
+            threads: 2,
+            ..EngineOptions::default()
+        },
+    )
+    .expect("bench model loads on tract with 2 threads");
+    let worst = check_inference(&two, cases, 1e-4);
+    eprintln!("bench model: max |tract (2 threads) - onnxruntime| = {worst:e}");
+    for threads in [1, 2] {
+        let model = Model::load_with(&package, None, &onnxruntime_options(threads))
+            .expect("bench model loads on ONNX Runtime");
+        assert_eq!(model.identity().engine, "onnxruntime");
+        let worst = check_inference(&model, cases, 1e-5);
+        eprintln!(
+            "bench model: max |onnxruntime engine ({threads} threads) - Python onnxruntime| = {worst:e}"
+        );
+    }
+}
+
+#[test]
+fn auto_engine_takes_onnxruntime_when_it_loads_and_tract_otherwise() {
+    let package = framewise_tests::demo_package();
+    let mut options = onnxruntime_options(1);
+    options.kind = EngineKind::Auto;
+    let model = Model::load_with(&package, None, &options).expect("auto loads");
+    assert_eq!(model.identity().engine, "onnxruntime");
+    options.onnxruntime_library = Some("/nonexistent/libonnxruntime.so".into());
+    let model = Model::load_with(&package, None, &options).expect("auto falls back");
+    assert_eq!(model.identity().engine, "tract");
+    options.kind = EngineKind::OnnxRuntime;
+    let err = Model::load_with(&package, None, &options).expect_err("a missing library is refused");
+    let text = err.to_string();
+    assert!(
+        text.contains("/nonexistent/libonnxruntime.so") && text.contains("onnxruntime"),
+        "{text}"
+    );
 }
 
 #[test]
@@ -189,10 +242,14 @@ fn colour_conversion_matches_opencv_and_the_standards() {
 
 #[test]
 fn whole_path_matches_the_opencv_onnxruntime_reference() {
-    let model = demo_model();
     let mut scratch = Scratch::default();
     let mut report = Vec::new();
-    for case in index()["whole_path"].as_array().expect("cases") {
+    let cases = index()["whole_path"].as_array().expect("cases").clone();
+    let engines = [demo_model(), demo_model_onnxruntime()];
+    for (model, case) in engines
+        .iter()
+        .flat_map(|m| cases.iter().map(move |c| (m, c)))
+    {
         let format = format_of(case["format"].as_str().expect("format"));
         let data = read_bytes(case["frame"].as_str().expect("frame"));
         let frame = frame_of(case, &data);
@@ -201,13 +258,14 @@ fn whole_path_matches_the_opencv_onnxruntime_reference() {
             ..Default::default()
         };
         let analysed =
-            pipeline::analyse(&model, &frame, &spec, &mut scratch).expect("frame analyses");
+            pipeline::analyse(model, &frame, &spec, &mut scratch).expect("frame analyses");
         let diff = max_abs_diff(&analysed.raw, &floats(&case["probs"]));
         // Reference: cv2.cvtColor + centre crop + cv2.resize(INTER_AREA) + normalise, then onnxruntime.
         // Inputs differ by the colour converter's rounding (<= 2 levels) and the area filter (<= 1 level
         // at these whole-number factors; JPEG by its decoder): the probabilities within 0.02.
         report.push(format!(
-            "{format} region={}: max |dp| = {diff:.2e}",
+            "{} {format} region={}: max |dp| = {diff:.2e}",
+            model.identity().engine,
             !case["region"].is_null()
         ));
         assert!(

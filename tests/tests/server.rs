@@ -742,3 +742,75 @@ async fn shutdown_goes_not_serving_refuses_new_sessions_and_lets_open_ones_finis
         .expect("stops within the deadline")
         .expect("clean stop");
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_server_on_the_onnxruntime_engine_says_so_in_every_answer_and_matches_the_engine_offline()
+{
+    let library = framewise_tests::onnxruntime_library();
+    let config = ServerConfig {
+        listen: "127.0.0.1:0".parse().expect("addr"),
+        engine: framewise_engine::EngineKind::OnnxRuntime,
+        onnxruntime_library: Some(library),
+        ..ServerConfig::default()
+    };
+    // No registry given: the server loads the demo model itself, on the configured engine.
+    let server = framewise_server::start(config, None)
+        .await
+        .expect("server starts on ONNX Runtime");
+    let url = format!("http://{}", server.addr);
+    let mut rng = Rng::new(7);
+    let frames: Vec<Vec<u8>> = (0..30).map(|_| noise_frame(&mut rng, 64, 48)).collect();
+    let inputs = frames
+        .iter()
+        .enumerate()
+        .map(|(i, d)| {
+            frame_msg(
+                i as u64,
+                1_000_000 + i as i64 * 33_333,
+                PixelFormat::Rgb8,
+                64,
+                48,
+                d.clone(),
+            )
+        })
+        .collect();
+    let outputs = converse(&url, opening(pb::FramePolicy::EveryFrame), inputs)
+        .await
+        .expect("session runs");
+    let Some(pb::session_output::Item::Accepted(accepted)) = &outputs[0].item else {
+        panic!("first output is not SessionAccepted")
+    };
+    assert_eq!(
+        accepted.model.as_ref().map(|m| m.engine.as_str()),
+        Some("onnxruntime")
+    );
+    let model = framewise_tests::demo_model_onnxruntime();
+    let mut scratch = framewise_engine::pipeline::Scratch::default();
+    let answers = answers(&outputs);
+    assert_eq!(answers.len(), frames.len());
+    for (a, data) in answers.iter().zip(&frames) {
+        assert_eq!(
+            a.model.as_ref().map(|m| m.engine.as_str()),
+            Some("onnxruntime"),
+            "frame {}: every answer names the engine",
+            a.seq
+        );
+        let Some(pb::answer::Outcome::Result(r)) = &a.outcome else {
+            panic!("frame {}: no result", a.seq)
+        };
+        let frame = FrameRef {
+            format: PixelFormat::Rgb8,
+            width: 64,
+            height: 48,
+            stride: 0,
+            data,
+        };
+        let expected =
+            framewise_engine::pipeline::analyse(&model, &frame, &Default::default(), &mut scratch)
+                .expect("offline analyses");
+        // Reference: the same engine offline (itself checked against Python onnxruntime in the reference
+        // tests); the service must not change the numbers.
+        assert_eq!(r.raw, expected.raw, "frame {}", a.seq);
+    }
+    server.stop().await.expect("stops");
+}

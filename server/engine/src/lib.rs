@@ -4,7 +4,8 @@
 //!
 //! # Layout
 //! - [`frame`]: pixel formats, validation, decoding and colour conversion over a region of interest.
-//! - [`manifest`] and [`model`]: model packages, their checks against the graph, CPU inference (tract).
+//! - [`manifest`] and [`model`]: model packages, their checks against the graph, CPU inference.
+//! - [`engine`]: which inference engine runs a model (tract or ONNX Runtime) and with how many threads.
 //! - [`preprocess`]: the manifest's recipe from RGB to the model's input tensor.
 //! - [`quality`]: focus and exposure measures.
 //! - [`filter`]: temporal filters and the decision with hysteresis.
@@ -14,6 +15,7 @@
 //! - [`caution`]: the caution that travels with every output.
 
 pub mod caution;
+pub mod engine;
 pub mod filter;
 pub mod frame;
 pub mod latency;
@@ -25,6 +27,7 @@ pub mod quality;
 pub mod scoring;
 
 pub use caution::CAUTION;
+pub use engine::{EngineKind, EngineOptions};
 pub use filter::{Decision, DecisionSpec, FilterSpec, SettingsError};
 pub use frame::{
     FrameError, FrameLimits, FrameRef, PixelFormat, Region, YuvMatrix, YuvRange, YuvSpec,

@@ -1,8 +1,9 @@
-//! Model packages (an `.onnx` file and its manifest) and CPU inference with tract.
+//! Model packages (an `.onnx` file and its manifest) and CPU inference with tract or ONNX Runtime.
 //!
 //! At load the manifest is checked against the graph (input name, layout, size, dtype, class count), the
-//! operators against what tract implements, and the file's SHA-256 becomes part of the model's identity.
-//! The plan is optimised for concrete shapes, warmed up once, and shared by every worker thread.
+//! operators against what the engine implements, and the file's SHA-256 becomes part of the model's identity.
+//! With tract the plan is optimised for concrete shapes and shared by every worker thread, each of which keeps
+//! its own run state; with ONNX Runtime each concurrent caller gets its own session. Both are warmed up once.
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
@@ -12,10 +13,9 @@ use sha2::{Digest, Sha256};
 use tract_onnx::pb;
 use tract_onnx::prelude::*;
 
+use crate::engine::{EngineKind, EngineOptions};
+pub use crate::engine::{ONNXRUNTIME_ENGINE, TRACT_ENGINE};
 use crate::manifest::{Layout, Manifest, ManifestError, OutputKind};
-
-/// Name of the inference engine, as results report it.
-pub const TRACT_ENGINE: &str = "tract";
 
 /// Largest `.onnx` file accepted (1 GiB).
 pub const MAX_MODEL_BYTES: usize = 1 << 30;
@@ -151,10 +151,23 @@ impl ModelPackage {
 pub struct Model {
     manifest: Manifest,
     identity: ModelIdentity,
-    /// The optimised graph with concrete batch 1.
-    plan: Arc<TypedRunnableModel>,
     /// Input shape for batch 1.
     input_shape: [usize; 4],
+    backend: Backend,
+}
+
+enum Backend {
+    Tract(Box<TractModel>),
+    #[cfg(feature = "onnxruntime")]
+    OnnxRuntime(crate::engine::onnxruntime::OrtModel),
+}
+
+struct TractModel {
+    /// The optimised graph with concrete batch 1.
+    plan: Arc<TypedRunnableModel>,
+    /// Run states of the batch-1 plan not in use; each caller takes one and gives it back, so buffers are
+    /// reused from frame to frame.
+    states: Mutex<Vec<TypedSimpleState>>,
     /// Present when the graph's batch dimension is symbolic: the typed (unoptimised) model to derive
     /// concrete plans for other batch sizes from, and the plans made so far.
     batching: Option<Batching>,
@@ -163,6 +176,7 @@ pub struct Model {
 struct Batching {
     typed: TypedModel,
     symbol: Symbol,
+    run_options: RunOptions,
     plans: Mutex<HashMap<usize, Arc<TypedRunnableModel>>>,
 }
 
@@ -215,8 +229,19 @@ fn shape_text(dims: &[Dim]) -> String {
 const ONNX_FLOAT: i32 = 1;
 
 impl Model {
-    /// Checks and prepares a package. `pinned_sha256`, when given, must match the file's hash.
+    /// Checks and prepares a package on tract with one thread. `pinned_sha256`, when given, must match the
+    /// file's hash.
     pub fn load(package: &ModelPackage, pinned_sha256: Option<&str>) -> Result<Self, ModelError> {
+        Self::load_with(package, pinned_sha256, &EngineOptions::default())
+    }
+
+    /// Checks and prepares a package on the engine the options choose. With [`EngineKind::Auto`], ONNX
+    /// Runtime is used when its library loads and tract otherwise.
+    pub fn load_with(
+        package: &ModelPackage,
+        pinned_sha256: Option<&str>,
+        options: &EngineOptions,
+    ) -> Result<Self, ModelError> {
         let manifest = package.manifest.clone();
         let sha256 = package.sha256();
         if let Some(expected) = pinned_sha256
@@ -235,85 +260,64 @@ impl Model {
             .graph
             .as_ref()
             .ok_or_else(|| ModelError::NotOnnx("it holds no graph".into()))?;
-        check_operators(graph, &onnx)?;
         let (batch_symbol, input_shape) = check_input(&manifest, graph)?;
         check_output_declared(&manifest, graph)?;
 
-        let engine_error = |e: TractError| ModelError::Engine {
-            engine: TRACT_ENGINE,
-            reason: format!("{e:#}"),
-        };
-        let mut inference = onnx.model_for_proto_model(&proto).map_err(engine_error)?;
-        if !manifest.output.tensor.is_empty() {
-            inference = inference
-                .with_outputs_by_name([manifest.output.tensor.as_str()])
-                .map_err(engine_error)?;
-        }
-        // Type the graph with a symbolic batch (when it has one) so that other batch sizes can be derived,
-        // then make the batch-1 plan from it.
-        let symbolic = batch_symbol.is_some();
-        let typed = if symbolic {
-            let batch = inference.symbols.sym("framewise_batch");
-            let mut shape: TVec<TDim> = input_shape.iter().map(|&d| TDim::from(d)).collect();
-            shape[0] = batch.clone().into();
-            let fact = f32::fact(shape);
-            let typed = inference
-                .with_input_fact(0, fact.into())
-                .map_err(engine_error)?
-                .into_typed()
-                .map_err(engine_error)?;
-            Some((typed, batch))
-        } else {
-            None
-        };
-        let concrete = match &typed {
-            Some((typed, symbol)) => concretize(typed, symbol, 1).map_err(engine_error)?,
-            None => {
-                let fact = f32::fact(input_shape);
-                let inference = onnx.model_for_proto_model(&proto).map_err(engine_error)?;
-                let inference = if manifest.output.tensor.is_empty() {
-                    inference
-                } else {
-                    inference
-                        .with_outputs_by_name([manifest.output.tensor.as_str()])
-                        .map_err(engine_error)?
-                };
-                inference
-                    .with_input_fact(0, fact.into())
-                    .map_err(engine_error)?
-                    .into_typed()
-                    .map_err(engine_error)?
+        let use_onnxruntime = match options.kind {
+            EngineKind::Tract => false,
+            EngineKind::OnnxRuntime => {
+                crate::engine::load_onnxruntime(options).map_err(|e| ModelError::Engine {
+                    engine: ONNXRUNTIME_ENGINE,
+                    reason: e.0,
+                })?;
+                true
             }
+            EngineKind::Auto => crate::engine::load_onnxruntime(options).is_ok(),
         };
-        check_output(&manifest, &concrete)?;
-        let plan = concrete
-            .into_optimized()
-            .map_err(engine_error)?
-            .into_runnable()
-            .map_err(engine_error)?;
+        let (backend, engine) = if use_onnxruntime {
+            (
+                onnxruntime_backend(package, &manifest, options)?,
+                ONNXRUNTIME_ENGINE,
+            )
+        } else {
+            check_operators(graph, &onnx)?;
+            let tract = tract_backend(
+                &onnx,
+                &proto,
+                &manifest,
+                batch_symbol.is_some(),
+                input_shape,
+                options.threads,
+            )?;
+            (Backend::Tract(Box::new(tract)), TRACT_ENGINE)
+        };
         let identity = ModelIdentity {
             name: manifest.name.clone(),
             version: manifest.version.clone(),
             sha256,
-            engine: TRACT_ENGINE,
+            engine,
         };
         let model = Self {
             manifest,
             identity,
-            plan,
             input_shape,
-            batching: typed.map(|(typed, symbol)| Batching {
-                typed,
-                symbol,
-                plans: Mutex::new(HashMap::new()),
-            }),
+            backend,
         };
-        // Warm-up: the first run allocates and touches everything once.
+        // Warm-up: the first run allocates and touches everything once. It also checks the class count for
+        // the engine that does not expose output shapes before running.
         let zeros = vec![0.0f32; model.input_len()];
-        model.infer(&zeros).map_err(|e| ModelError::Engine {
-            engine: TRACT_ENGINE,
+        let k = model.manifest.classes.len();
+        let raw = model.run(1, &zeros).map_err(|e| ModelError::Engine {
+            engine,
             reason: e.0,
         })?;
+        if raw.len() != k {
+            return Err(ModelError::Mismatch {
+                field: "classes",
+                manifest: format!("{k} classes ({})", model.manifest.classes.join(", ")),
+                graph: format!("an output of {} values per frame", raw.len()),
+            });
+        }
         Ok(model)
     }
 
@@ -344,17 +348,22 @@ impl Model {
 
     /// True when the graph has a symbolic batch dimension, so [`Model::infer_batch`] can run several frames.
     pub fn can_batch(&self) -> bool {
-        self.batching.is_some()
+        match &self.backend {
+            Backend::Tract(t) => t.batching.is_some(),
+            #[cfg(feature = "onnxruntime")]
+            Backend::OnnxRuntime(_) => false,
+        }
     }
 
     /// Runs one frame's input tensor (in the manifest's layout) and returns class probabilities (softmax
     /// applied when the manifest says the outputs are logits).
     pub fn infer(&self, input: &[f32]) -> Result<Vec<f32>, InferenceError> {
-        let mut out = self.run(&self.plan, 1, input)?;
+        let raw = self.run(1, input)?;
+        let mut out = self.scores(raw, 1)?;
         Ok(out.pop().unwrap_or_default())
     }
 
-    /// Runs several frames' input tensors as one batch. Needs a symbolic batch dimension.
+    /// Runs several frames' input tensors as one batch. Needs a symbolic batch dimension (tract).
     pub fn infer_batch(&self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, InferenceError> {
         let n = inputs.len();
         if n == 0 {
@@ -363,45 +372,27 @@ impl Model {
         if n == 1 {
             return Ok(vec![self.infer(inputs[0])?]);
         }
-        let batching = self
-            .batching
-            .as_ref()
-            .ok_or_else(|| InferenceError("the model has a fixed batch dimension of 1".into()))?;
+        if !self.can_batch() {
+            return Err(InferenceError(
+                "the model has a fixed batch dimension of 1 (or its engine runs single frames)"
+                    .into(),
+            ));
+        }
         if n > MAX_BATCH {
             return Err(InferenceError(format!(
                 "batch of {n} is larger than the limit of {MAX_BATCH}"
             )));
         }
-        let plan = {
-            let mut plans = batching
-                .plans
-                .lock()
-                .map_err(|_| InferenceError("plan cache poisoned".into()))?;
-            match plans.get(&n) {
-                Some(plan) => plan.clone(),
-                None => {
-                    let plan = concretize(&batching.typed, &batching.symbol, n)
-                        .and_then(|m| m.into_optimized())
-                        .and_then(|m| m.into_runnable())
-                        .map_err(|e| InferenceError(format!("{e:#}")))?;
-                    plans.insert(n, plan.clone());
-                    plan
-                }
-            }
-        };
         let mut joined = Vec::with_capacity(n * self.input_len());
         for input in inputs {
             joined.extend_from_slice(input);
         }
-        self.run(&plan, n, &joined)
+        let raw = self.run(n, &joined)?;
+        self.scores(raw, n)
     }
 
-    fn run(
-        &self,
-        plan: &Arc<TypedRunnableModel>,
-        batch: usize,
-        input: &[f32],
-    ) -> Result<Vec<Vec<f32>>, InferenceError> {
+    /// Runs a batch through the engine and returns its raw output values.
+    fn run(&self, batch: usize, input: &[f32]) -> Result<Vec<f32>, InferenceError> {
         let per_frame = self.input_len();
         if input.len() != per_frame * batch {
             return Err(InferenceError(format!(
@@ -412,18 +403,15 @@ impl Model {
         }
         let mut shape = self.input_shape;
         shape[0] = batch;
-        let tensor =
-            Tensor::from_shape(&shape, input).map_err(|e| InferenceError(format!("{e:#}")))?;
-        let outputs = plan
-            .run(tvec![tensor.into()])
-            .map_err(|e| InferenceError(format!("{e:#}")))?;
-        let first = outputs
-            .first()
-            .ok_or_else(|| InferenceError("the model produced no output".into()))?;
-        let view = first
-            .to_plain_array_view::<f32>()
-            .map_err(|e| InferenceError(format!("{e:#}")))?;
-        let values: Vec<f32> = view.iter().copied().collect();
+        match &self.backend {
+            Backend::Tract(t) => t.run(shape, input),
+            #[cfg(feature = "onnxruntime")]
+            Backend::OnnxRuntime(o) => o.run(shape, input).map_err(InferenceError),
+        }
+    }
+
+    /// Splits raw outputs into frames and applies softmax to logits.
+    fn scores(&self, values: Vec<f32>, batch: usize) -> Result<Vec<Vec<f32>>, InferenceError> {
         let k = self.manifest.classes.len();
         if values.len() != k * batch {
             return Err(InferenceError(format!(
@@ -439,6 +427,170 @@ impl Model {
                 OutputKind::Probabilities => scores.to_vec(),
             })
             .collect())
+    }
+}
+
+#[cfg(feature = "onnxruntime")]
+fn onnxruntime_backend(
+    package: &ModelPackage,
+    manifest: &Manifest,
+    options: &EngineOptions,
+) -> Result<Backend, ModelError> {
+    crate::engine::onnxruntime::OrtModel::new(
+        &options.library_path(),
+        package.onnx.clone(),
+        options.threads,
+        &manifest.input.tensor,
+        &manifest.output.tensor,
+    )
+    .map(Backend::OnnxRuntime)
+    .map_err(|reason| ModelError::Engine {
+        engine: ONNXRUNTIME_ENGINE,
+        reason,
+    })
+}
+
+#[cfg(not(feature = "onnxruntime"))]
+fn onnxruntime_backend(
+    _package: &ModelPackage,
+    _manifest: &Manifest,
+    _options: &EngineOptions,
+) -> Result<Backend, ModelError> {
+    Err(ModelError::Engine {
+        engine: ONNXRUNTIME_ENGINE,
+        reason: "this build has no ONNX Runtime engine (cargo feature `onnxruntime` off)".into(),
+    })
+}
+
+/// Prepares the tract plan: typed with a symbolic batch when the graph has one (so other batch sizes can be
+/// derived), concretised to batch 1, optimised, and run on a private thread pool when `threads` > 1.
+fn tract_backend(
+    onnx: &tract_onnx::Onnx,
+    proto: &pb::ModelProto,
+    manifest: &Manifest,
+    symbolic: bool,
+    input_shape: [usize; 4],
+    threads: usize,
+) -> Result<TractModel, ModelError> {
+    let engine_error = |e: TractError| ModelError::Engine {
+        engine: TRACT_ENGINE,
+        reason: format!("{e:#}"),
+    };
+    let inference = || -> Result<InferenceModel, ModelError> {
+        let inference = onnx.model_for_proto_model(proto).map_err(engine_error)?;
+        if manifest.output.tensor.is_empty() {
+            Ok(inference)
+        } else {
+            inference
+                .with_outputs_by_name([manifest.output.tensor.as_str()])
+                .map_err(engine_error)
+        }
+    };
+    let typed = if symbolic {
+        let inference = inference()?;
+        let batch = inference.symbols.sym("framewise_batch");
+        let mut shape: TVec<TDim> = input_shape.iter().map(|&d| TDim::from(d)).collect();
+        shape[0] = batch.clone().into();
+        let typed = inference
+            .with_input_fact(0, f32::fact(shape).into())
+            .map_err(engine_error)?
+            .into_typed()
+            .map_err(engine_error)?;
+        Some((typed, batch))
+    } else {
+        None
+    };
+    let concrete = match &typed {
+        Some((typed, symbol)) => concretize(typed, symbol, 1).map_err(engine_error)?,
+        None => inference()?
+            .with_input_fact(0, f32::fact(input_shape).into())
+            .map_err(engine_error)?
+            .into_typed()
+            .map_err(engine_error)?,
+    };
+    check_output(manifest, &concrete)?;
+    let run_options = tract_run_options(threads);
+    let plan = concrete
+        .into_optimized()
+        .map_err(engine_error)?
+        .into_runnable_with_options(&run_options)
+        .map_err(engine_error)?;
+    Ok(TractModel {
+        plan,
+        states: Mutex::new(Vec::new()),
+        batching: typed.map(|(typed, symbol)| Batching {
+            typed,
+            symbol,
+            run_options,
+            plans: Mutex::new(HashMap::new()),
+        }),
+    })
+}
+
+/// Plan options: a private pool for tract's multithreaded matrix products when more than one thread.
+fn tract_run_options(threads: usize) -> RunOptions {
+    RunOptions {
+        executor: (threads > 1).then(|| {
+            tract_linalg::multithread::Executor::multithread_with_name(threads, "framewise-mm")
+        }),
+        ..RunOptions::default()
+    }
+}
+
+impl TractModel {
+    fn run(&self, shape: [usize; 4], input: &[f32]) -> Result<Vec<f32>, InferenceError> {
+        let fail = |e: TractError| InferenceError(format!("{e:#}"));
+        let tensor = Tensor::from_shape(&shape, input).map_err(fail)?;
+        let outputs = if shape[0] == 1 {
+            let taken = self
+                .states
+                .lock()
+                .map_err(|_| InferenceError("run state pool poisoned".into()))?
+                .pop();
+            let mut state = match taken {
+                Some(state) => state,
+                None => self.plan.spawn().map_err(fail)?,
+            };
+            let outputs = state.run(tvec![tensor.into()]);
+            // A state whose run failed is dropped rather than reused.
+            if outputs.is_ok()
+                && let Ok(mut states) = self.states.lock()
+            {
+                states.push(state);
+            }
+            outputs.map_err(fail)?
+        } else {
+            let batching = self.batching.as_ref().ok_or_else(|| {
+                InferenceError("the model has a fixed batch dimension of 1".into())
+            })?;
+            batching
+                .plan(shape[0])?
+                .run(tvec![tensor.into()])
+                .map_err(fail)?
+        };
+        let first = outputs
+            .first()
+            .ok_or_else(|| InferenceError("the model produced no output".into()))?;
+        let view = first.to_plain_array_view::<f32>().map_err(fail)?;
+        Ok(view.iter().copied().collect())
+    }
+}
+
+impl Batching {
+    fn plan(&self, n: usize) -> Result<Arc<TypedRunnableModel>, InferenceError> {
+        let mut plans = self
+            .plans
+            .lock()
+            .map_err(|_| InferenceError("plan cache poisoned".into()))?;
+        if let Some(plan) = plans.get(&n) {
+            return Ok(plan.clone());
+        }
+        let plan = concretize(&self.typed, &self.symbol, n)
+            .and_then(|m| m.into_optimized())
+            .and_then(|m| m.into_runnable_with_options(&self.run_options))
+            .map_err(|e| InferenceError(format!("{e:#}")))?;
+        plans.insert(n, plan.clone());
+        Ok(plan)
     }
 }
 

@@ -4,6 +4,7 @@ use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::time::Duration;
 
+use framewise_engine::{EngineKind, EngineOptions};
 use serde::Deserialize;
 
 /// Default gRPC address: loopback only.
@@ -37,6 +38,14 @@ pub struct ServerConfig {
     pub strict_models: bool,
     /// Inference worker threads; 0 for one per core.
     pub workers: usize,
+    /// The inference engine for every model without its own `engine`: tract, onnxruntime or auto.
+    pub engine: EngineKind,
+    /// ONNX Runtime's shared library (libonnxruntime.so); none for `ORT_DYLIB_PATH`, then the system's
+    /// search path.
+    pub onnxruntime_library: Option<PathBuf>,
+    /// Threads one inference may use. 1 (the default) with one worker per core serves many streams best;
+    /// fewer workers with more threads each make one stream quicker.
+    pub inference_threads: usize,
     /// Largest gRPC message in bytes.
     pub max_message_bytes: usize,
     /// Largest frame width in pixels.
@@ -66,6 +75,9 @@ pub struct ModelEntry {
     /// SHA-256 the `.onnx` file must have.
     #[serde(default)]
     pub sha256: Option<String>,
+    /// The engine for this model; none for the server's `engine`.
+    #[serde(default)]
+    pub engine: Option<EngineKind>,
 }
 
 /// TLS files (PEM).
@@ -93,6 +105,9 @@ impl Default for ServerConfig {
             demo_model: true,
             strict_models: false,
             workers: 0,
+            engine: EngineKind::Tract,
+            onnxruntime_library: None,
+            inference_threads: 1,
             max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES,
             max_frame_width: framewise_engine::frame::DEFAULT_FRAME_LIMITS.max_width,
             max_frame_height: framewise_engine::frame::DEFAULT_FRAME_LIMITS.max_height,
@@ -136,6 +151,12 @@ impl ServerConfig {
                      (--allow-insecure-remote) if the network is otherwise protected",
                     self.listen
                 ),
+            );
+        }
+        if self.inference_threads == 0 || self.inference_threads > 256 {
+            return bad(
+                "inference_threads",
+                format!("is {}; it must be from 1 to 256", self.inference_threads),
             );
         }
         if self.max_sessions == 0 {
@@ -186,6 +207,15 @@ impl ServerConfig {
             std::thread::available_parallelism()
                 .map(|n| n.get())
                 .unwrap_or(1)
+        }
+    }
+
+    /// Engine options for a model entry (none for the demo model).
+    pub fn engine_options(&self, entry: Option<&ModelEntry>) -> EngineOptions {
+        EngineOptions {
+            kind: entry.and_then(|e| e.engine).unwrap_or(self.engine),
+            onnxruntime_library: self.onnxruntime_library.clone(),
+            threads: self.inference_threads,
         }
     }
 

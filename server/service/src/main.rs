@@ -41,6 +41,17 @@ struct Args {
     /// Inference worker threads (0: one per core).
     #[arg(long)]
     workers: Option<usize>,
+    /// Inference engine: tract (built in), onnxruntime (needs libonnxruntime.so) or auto (onnxruntime when
+    /// its library loads, tract otherwise).
+    #[arg(long)]
+    engine: Option<framewise_engine::EngineKind>,
+    /// ONNX Runtime's shared library, libonnxruntime.so (default: $ORT_DYLIB_PATH, then the system's search
+    /// path).
+    #[arg(long)]
+    onnxruntime_library: Option<PathBuf>,
+    /// Threads per inference (1 suits many streams; more make one stream quicker).
+    #[arg(long)]
+    inference_threads: Option<usize>,
     /// Largest number of open sessions.
     #[arg(long)]
     max_sessions: Option<usize>,
@@ -92,11 +103,13 @@ fn config_from(args: Args) -> Result<ServerConfig> {
     if args.metrics_listen.is_some() {
         config.metrics_listen = args.metrics_listen;
     }
-    config.models.extend(
-        args.models
-            .into_iter()
-            .map(|path| ModelEntry { path, sha256: None }),
-    );
+    config
+        .models
+        .extend(args.models.into_iter().map(|path| ModelEntry {
+            path,
+            sha256: None,
+            engine: None,
+        }));
     if let Some(v) = args.default_model {
         config.default_model = v;
     }
@@ -106,6 +119,15 @@ fn config_from(args: Args) -> Result<ServerConfig> {
     config.strict_models |= args.strict_models;
     if let Some(v) = args.workers {
         config.workers = v;
+    }
+    if let Some(v) = args.engine {
+        config.engine = v;
+    }
+    if args.onnxruntime_library.is_some() {
+        config.onnxruntime_library = args.onnxruntime_library;
+    }
+    if let Some(v) = args.inference_threads {
+        config.inference_threads = v;
     }
     if let Some(v) = args.max_sessions {
         config.max_sessions = v;

@@ -35,8 +35,13 @@ impl ModelRegistry {
         let mut failures = Vec::new();
         for entry in &config.models {
             let source = entry.path.display().to_string();
-            let loaded = ModelPackage::read(&entry.path)
-                .and_then(|p| Model::load(&p, entry.sha256.as_deref()));
+            let loaded = ModelPackage::read(&entry.path).and_then(|p| {
+                Model::load_with(
+                    &p,
+                    entry.sha256.as_deref(),
+                    &config.engine_options(Some(entry)),
+                )
+            });
             match loaded {
                 Ok(model) => models.push(Arc::new(model)),
                 Err(error) if config.strict_models => return Err(LoadFailure { source, error }),
@@ -45,7 +50,7 @@ impl ModelRegistry {
         }
         if config.demo_model {
             let demo = ModelPackage::from_parts(DEMO_MANIFEST, DEMO_ONNX)
-                .and_then(|p| Model::load(&p, None));
+                .and_then(|p| Model::load_with(&p, None, &config.engine_options(None)));
             match demo {
                 Ok(model) => models.push(Arc::new(model)),
                 Err(error) => {
