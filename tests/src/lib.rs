@@ -28,6 +28,18 @@ pub fn python() -> PathBuf {
     }
 }
 
+/// A release binary of the workspace (`framewise`, `framewise-server`, `framewise-synth`), built by
+/// `tests/run-all` before the tests run.
+pub fn binary(name: &str) -> PathBuf {
+    let path = workspace_root().join("target/release").join(name);
+    assert!(
+        path.exists(),
+        "{} is missing: build it with `cargo build --release --workspace --bins` (tests/run-all does)",
+        path.display()
+    );
+    path
+}
+
 /// The embedded demo package.
 pub fn demo_package() -> ModelPackage {
     ModelPackage::from_parts(
