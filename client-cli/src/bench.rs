@@ -158,7 +158,11 @@ struct Shared {
 }
 
 /// Synthetic frames: a few phantom views, encoded once, sent in turn.
-fn synthetic_frames(width: u32, height: u32, format: PixelFormat) -> Result<Vec<Vec<u8>>> {
+fn synthetic_frames(
+    width: u32,
+    height: u32,
+    format: PixelFormat,
+) -> Result<Vec<prost::bytes::Bytes>> {
     let mut rng = SplitMix64::new(77);
     let drum = Drum::random(8, &mut rng);
     (0..8)
@@ -166,6 +170,7 @@ fn synthetic_frames(width: u32, height: u32, format: PixelFormat) -> Result<Vec<
             let view = random_view(&drum, &mut rng);
             let rgb = drum.render(&view, width, height);
             framewise_engine::frame::encode_from_rgb(&rgb, width, height, format)
+                .map(prost::bytes::Bytes::from)
                 .map_err(|e| anyhow::anyhow!("{e}"))
         })
         .collect()
@@ -318,7 +323,7 @@ async fn one_session(
     url: &str,
     token: Option<&str>,
     opening: pb::SessionOpening,
-    frames: Arc<Vec<Vec<u8>>>,
+    frames: Arc<Vec<prost::bytes::Bytes>>,
     width: u32,
     height: u32,
     format: PixelFormat,

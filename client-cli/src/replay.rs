@@ -403,7 +403,7 @@ pub async fn replay(
                             width: data.width,
                             height: data.height,
                             stride: 0,
-                            data: data.data,
+                            data: data.data.into(),
                         };
                         if let Ok(mut m) = sent_at.lock() {
                             m.insert(i as u64, Instant::now());

@@ -60,7 +60,7 @@ fn frame_msg(
             width: w,
             height: h,
             stride: 0,
-            data,
+            data: data.into(),
         })),
     }
 }
