@@ -4,6 +4,9 @@
 //! Every-frame: the session reads the next frame only after answering the previous one, so when the server
 //! falls behind the transport's flow control slows the sender. Latest-only: a reader keeps at most one
 //! frame waiting and answers an overtaken one as skipped at once.
+//!
+//! A client that takes no answer for the idle timeout (or still none at the drain deadline) is ended: its
+//! session must not hold a slot and its buffered frames forever.
 
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
@@ -265,6 +268,38 @@ async fn next_frame(
     }
 }
 
+/// Why an answer could not be handed to the client's stream.
+enum Undelivered {
+    /// The client went away: a normal end.
+    Gone,
+    /// The client took no answer for the idle timeout, or the drain deadline passed while it took none.
+    Stuck(Status),
+}
+
+/// Hands an answer to the client's stream, waiting at most the idle timeout (and not past the drain
+/// deadline) for the client to make room by reading.
+async fn deliver(
+    outbox: &Outbox,
+    ctx: &SessionContext,
+    message: pb::SessionOutput,
+) -> Result<(), Undelivered> {
+    tokio::select! {
+        // A client that is reading is served first, also after the drain deadline.
+        biased;
+        sent = tokio::time::timeout(ctx.idle_timeout, outbox.send(Ok(message))) => match sent {
+            Ok(Ok(())) => Ok(()),
+            Ok(Err(_)) => Err(Undelivered::Gone),
+            Err(_) => Err(Undelivered::Stuck(Status::deadline_exceeded(format!(
+                "the client read no answer for {:.0} s (idle timeout); the session was ended",
+                ctx.idle_timeout.as_secs_f64()
+            )))),
+        },
+        _ = ctx.hard_stop.cancelled() => Err(Undelivered::Stuck(Status::unavailable(
+            "the server is shutting down; the session was ended at the drain deadline",
+        ))),
+    }
+}
+
 /// Runs a session after its opening was accepted: answers every frame and sends the summary.
 pub async fn run(ctx: SessionContext, inbound: tonic::Streaming<pb::SessionInput>, outbox: Outbox) {
     let tally = Arc::new(Mutex::new(Tally::default()));
@@ -333,12 +368,20 @@ pub async fn run(ctx: SessionContext, inbound: tonic::Streaming<pb::SessionInput
                     caution: CAUTION.into(),
                 })),
             };
-            let _ = outbox.send(Ok(message)).await;
+            finish(outbox, Ok(message));
         }
-        Err(status) => {
-            // The client may be gone already; nothing more to do then.
-            let _ = outbox.send(Err(status)).await;
-        }
+        Err(status) => finish(outbox, Err(status)),
+    }
+}
+
+/// Sends the session's last message. When the client is not reading and its stream is full, the message
+/// waits for it in a small task of its own, so that the session (its slot, its frames) ends now; the task
+/// ends when the client reads or leaves.
+fn finish(outbox: Outbox, last: Result<pb::SessionOutput, Status>) {
+    if let Err(mpsc::error::TrySendError::Full(last)) = outbox.try_send(last) {
+        tokio::spawn(async move {
+            let _ = outbox.send(last).await;
+        });
     }
 }
 
@@ -360,9 +403,11 @@ async fn every_frame(
         };
         count_frame(&processor.tally, &processor.ctx.stats);
         let out = processor.process(arrived).await;
-        if outbox.send(Ok(out)).await.is_err() {
+        match deliver(outbox, &processor.ctx, out).await {
+            Ok(()) => {}
             // The client went away: a normal end.
-            return Ok(());
+            Err(Undelivered::Gone) => return Ok(()),
+            Err(Undelivered::Stuck(status)) => return Err(status),
         }
     }
 }
@@ -412,12 +457,11 @@ async fn latest_only(
                             };
                             let skipped =
                                 pb::answer::Outcome::Skipped(pb::Skipped { overtaken_by: by });
-                            if outbox
-                                .send(Ok(answer(old.frame.seq, t_us, &identity, skipped)))
-                                .await
-                                .is_err()
-                            {
-                                break Ok(());
+                            let out = answer(old.frame.seq, t_us, &identity, skipped);
+                            match deliver(&outbox, &ctx, out).await {
+                                Ok(()) => {}
+                                Err(Undelivered::Gone) => break Ok(()),
+                                Err(Undelivered::Stuck(status)) => break Err(status),
                             }
                         }
                     }
@@ -447,8 +491,10 @@ async fn latest_only(
         match next {
             Ok(Some(arrived)) => {
                 let out = processor.process(arrived).await;
-                if outbox.send(Ok(out)).await.is_err() {
-                    break Ok(());
+                match deliver(outbox, &processor.ctx, out).await {
+                    Ok(()) => {}
+                    Err(Undelivered::Gone) => break Ok(()),
+                    Err(Undelivered::Stuck(status)) => break Err(status),
                 }
             }
             Ok(None) => wake.notified().await,
