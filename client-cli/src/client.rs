@@ -16,7 +16,10 @@ pub const MAX_MESSAGE_BYTES: usize = 36 * 1024 * 1024;
 /// Connects to a server URL (`http://host:port`).
 pub async fn connect(url: &str) -> Result<FrameAnalysisClient<Channel>> {
     let endpoint = Endpoint::from_shared(url.to_string())
-        .with_context(|| format!("`{url}` is not a server URL"))?;
+        .with_context(|| format!("`{url}` is not a server URL"))?
+        .tcp_nodelay(true)
+        .initial_stream_window_size(framewise_server::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(framewise_server::CONNECTION_WINDOW_BYTES);
     let channel = endpoint
         .connect()
         .await

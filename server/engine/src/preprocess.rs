@@ -142,7 +142,7 @@ impl Preprocessor {
 
     fn resize(&mut self, spec: &InputSpec, rgb: &RgbImage, plan: &ResizePlan) {
         let (pw, ph) = (plan.place.width, plan.place.height);
-        self.resized.clear();
+        // Every path below writes every value, so a buffer of the right length is not cleared first.
         self.resized.resize(pw as usize * ph as usize * 3, 0);
         let (cx, cy, cw, ch) = plan.crop;
         if (cw, ch) == (pw, ph) {
@@ -245,7 +245,7 @@ fn area_weights(src: usize, dst: usize, out: &mut Vec<(usize, usize, f32)>) {
 /// with the letterbox fill around the placed picture.
 fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut Vec<f32>) {
     let (tw, th) = (spec.width as usize, spec.height as usize);
-    tensor.clear();
+    // Every value is written below (fill, then picture), so the buffer is not cleared first.
     tensor.resize(3 * tw * th, 0.0);
     // Per channel (in the model's order): the source channel in RGB, and a lookup table for 0..=255.
     let source = match spec.colour_order {
@@ -258,37 +258,48 @@ fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut V
             *slot = ((v as f64 * spec.scale - spec.mean[c]) / spec.std[c]) as f32;
         }
     }
-    let fill = spec.letterbox_fill as usize;
     let (px, py, pw, ph) = (
         place.x as usize,
         place.y as usize,
         place.width as usize,
         place.height as usize,
     );
-    let value_at = |c: usize, x: usize, y: usize| -> f32 {
-        if x >= px && x < px + pw && y >= py && y < py + ph {
-            let i = ((y - py) * pw + (x - px)) * 3 + source[c];
-            tables[c][picture[i] as usize]
-        } else {
-            tables[c][fill]
-        }
-    };
+    // The letterbox fill first (only where the picture does not cover the tensor), then the picture row by
+    // row: a table lookup per value, with no per-value bounds test.
+    let covered = px == 0 && py == 0 && pw == tw && ph == th;
+    let fill = spec.letterbox_fill as usize;
     match spec.layout {
         Layout::Nchw => {
             for c in 0..3 {
                 let plane = &mut tensor[c * tw * th..(c + 1) * tw * th];
-                for y in 0..th {
-                    for x in 0..tw {
-                        plane[y * tw + x] = value_at(c, x, y);
+                if !covered {
+                    plane.fill(tables[c][fill]);
+                }
+                let table = &tables[c];
+                for y in 0..ph {
+                    let src = &picture[y * pw * 3..(y + 1) * pw * 3];
+                    let dst = &mut plane[(py + y) * tw + px..(py + y) * tw + px + pw];
+                    for (d, p) in dst.iter_mut().zip(src.chunks_exact(3)) {
+                        *d = table[p[source[c]] as usize];
                     }
                 }
             }
         }
         Layout::Nhwc => {
-            for y in 0..th {
-                for x in 0..tw {
+            if !covered {
+                for px3 in tensor.chunks_exact_mut(3) {
                     for c in 0..3 {
-                        tensor[(y * tw + x) * 3 + c] = value_at(c, x, y);
+                        px3[c] = tables[c][fill];
+                    }
+                }
+            }
+            for y in 0..ph {
+                let src = &picture[y * pw * 3..(y + 1) * pw * 3];
+                let start = ((py + y) * tw + px) * 3;
+                let dst = &mut tensor[start..start + pw * 3];
+                for (d, p) in dst.chunks_exact_mut(3).zip(src.chunks_exact(3)) {
+                    for c in 0..3 {
+                        d[c] = tables[c][p[source[c]] as usize];
                     }
                 }
             }

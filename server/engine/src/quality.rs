@@ -116,16 +116,32 @@ pub fn laplacian_variance(luma: &[u8], width: usize, height: usize) -> f64 {
             i as usize
         }
     };
-    let at = |x: isize, y: isize| f64::from(luma[reflect(y, height) * width + reflect(x, width)]);
-    let mut sum = 0.0;
-    let mut sum_sq = 0.0;
-    for y in 0..height as isize {
-        for x in 0..width as isize {
-            let v = at(x - 1, y) + at(x + 1, y) + at(x, y - 1) + at(x, y + 1) - 4.0 * at(x, y);
+    // Integer responses (|v| <= 1020) summed exactly in i64; the same sums in f64 would be exact too, so the
+    // result does not depend on the order of summation.
+    let mut sum: i64 = 0;
+    let mut sum_sq: i64 = 0;
+    for y in 0..height {
+        let up = &luma[reflect(y as isize - 1, height) * width..][..width];
+        let row = &luma[y * width..][..width];
+        let down = &luma[reflect(y as isize + 1, height) * width..][..width];
+        let mut add = |x: usize, left: usize, right: usize| {
+            let v = i64::from(row[left])
+                + i64::from(row[right])
+                + i64::from(up[x])
+                + i64::from(down[x])
+                - 4 * i64::from(row[x]);
             sum += v;
             sum_sq += v * v;
+        };
+        add(0, reflect(-1, width), reflect(1, width));
+        if width > 1 {
+            for x in 1..width - 1 {
+                add(x, x - 1, x + 1);
+            }
+            add(width - 1, width - 2, reflect(width as isize, width));
         }
     }
+    let (sum, sum_sq) = (sum as f64, sum_sq as f64);
     let n = (width * height) as f64;
     let mean = sum / n;
     (sum_sq / n - mean * mean).max(0.0)

@@ -38,6 +38,12 @@ use crate::stats::ServerStats;
 
 /// Time the transport gets to close connections after the sessions ended.
 pub const TRANSPORT_CLOSE_GRACE: Duration = Duration::from_secs(2);
+/// HTTP/2 receive window per stream (session): bytes a client may send before the server has read them.
+pub const STREAM_WINDOW_BYTES: u32 = 8 << 20;
+/// HTTP/2 receive window per connection (all its sessions together).
+pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
+/// Largest HTTP/2 frame the server accepts (the protocol allows up to 16 MiB - 1; the default is 16 KiB).
+pub const HTTP2_MAX_FRAME_BYTES: u32 = 1 << 20;
 
 /// A running server.
 pub struct RunningServer {
@@ -138,7 +144,13 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
         .set_service_status("", tonic_health::ServingStatus::Serving)
         .await;
 
-    let mut builder = tonic::transport::Server::builder();
+    // HTTP/2 flow control sized for frames: a 1920x1080 NV12 frame is 3 MB, which the protocol's default
+    // 64 KiB windows would let through in many acknowledged pieces. The windows also bound what one session
+    // and one connection can have in flight before the server reads it.
+    let mut builder = tonic::transport::Server::builder()
+        .initial_stream_window_size(Some(STREAM_WINDOW_BYTES))
+        .initial_connection_window_size(Some(CONNECTION_WINDOW_BYTES))
+        .max_frame_size(Some(HTTP2_MAX_FRAME_BYTES));
     if let Some(tls) = &config.tls {
         let cert =
             std::fs::read(&tls.cert).with_context(|| format!("reading {}", tls.cert.display()))?;

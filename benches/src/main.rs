@@ -1,0 +1,517 @@
+//! `framewise-benchmarks`: the measurements behind BENCHMARKS.md, one command each.
+//!
+//! - `inference`: bare inference per frame on the demo model and the MobileNetV2-shaped network, for tract,
+//!   the ONNX Runtime engine and Python onnxruntime (the reference), with 1 and 2 threads.
+//! - `preprocess`: one frame to the 224x224 input tensor, per pixel format and frame size, on framewise's
+//!   SIMD path and on a plain path built from the `image` crate and scalar colour conversion.
+//! - `overhead`: end-to-end time through a loopback server (one session, every frame) minus the inference
+//!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames.
+//!
+//! Saturation and the Python peer are measured by `benches/saturation.py` with `framewise bench`.
+//!
+//! Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
+//! confirmed by a qualified clinician; check local regulations before any clinical use.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result, bail};
+use clap::{Parser, Subcommand};
+use framewise_engine::frame::encode_from_rgb;
+use framewise_engine::manifest::InputSpec;
+use framewise_engine::pipeline::{self, FrameSpec, Scratch};
+use framewise_engine::{
+    CAUTION, EngineKind, EngineOptions, FrameRef, Model, ModelPackage, PixelFormat,
+};
+use framewise_models_demo::phantom::{Drum, random_view};
+use framewise_models_demo::rng::SplitMix64;
+use framewise_proto::v1 as pb;
+use serde_json::json;
+
+#[derive(Parser)]
+#[command(about = "framewise benchmarks (numbers for BENCHMARKS.md)")]
+struct Args {
+    #[command(subcommand)]
+    command: Bench,
+    /// Also write the figures as JSON here.
+    #[arg(long, global = true)]
+    json: Option<PathBuf>,
+}
+
+#[derive(Subcommand)]
+enum Bench {
+    /// Bare inference per frame: tract, the ONNX Runtime engine and Python onnxruntime.
+    Inference {
+        /// Frames timed per configuration on the MobileNetV2-shaped network (ten times as many on the demo
+        /// model).
+        #[arg(long, default_value_t = 300)]
+        frames: usize,
+    },
+    /// One frame to the input tensor per pixel format and size: SIMD path against a plain path.
+    Preprocess {
+        /// Frames timed per configuration.
+        #[arg(long, default_value_t = 60)]
+        frames: usize,
+    },
+    /// Service overhead: end-to-end through a loopback server minus the reported inference time.
+    Overhead {
+        /// Frames per configuration.
+        #[arg(long, default_value_t = 300)]
+        frames: usize,
+    },
+}
+
+fn main() {
+    if let Err(e) = run() {
+        eprintln!("framewise-benchmarks: {e:#}");
+        std::process::exit(1);
+    }
+}
+
+fn run() -> Result<()> {
+    let args = Args::parse();
+    eprintln!("{CAUTION}");
+    let figures = match args.command {
+        Bench::Inference { frames } => inference(frames)?,
+        Bench::Preprocess { frames } => preprocess(frames)?,
+        Bench::Overhead { frames } => {
+            let runtime = tokio::runtime::Builder::new_multi_thread()
+                .worker_threads(2)
+                .enable_all()
+                .build()?;
+            runtime.block_on(overhead(frames))?
+        }
+    };
+    if let Some(path) = args.json {
+        let doc = json!({"caution": CAUTION, "machine": machine(), "figures": figures});
+        std::fs::write(&path, serde_json::to_string_pretty(&doc)?)
+            .with_context(|| format!("writing {}", path.display()))?;
+    }
+    Ok(())
+}
+
+/// The machine, as BENCHMARKS.md states it.
+fn machine() -> serde_json::Value {
+    let cpu = std::fs::read_to_string("/proc/cpuinfo")
+        .ok()
+        .and_then(|t| {
+            t.lines()
+                .find(|l| l.starts_with("model name"))
+                .and_then(|l| l.split(':').nth(1))
+                .map(|s| s.trim().to_string())
+        })
+        .unwrap_or_default();
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    json!({"cpu": cpu, "cores": cores})
+}
+
+/// Median and 99th percentile (nearest rank) of millisecond samples.
+fn summary(mut ms: Vec<f64>) -> (f64, f64) {
+    ms.sort_by(f64::total_cmp);
+    if ms.is_empty() {
+        return (0.0, 0.0);
+    }
+    let rank = ((0.99 * ms.len() as f64).ceil() as usize).clamp(1, ms.len());
+    (ms[ms.len() / 2], ms[rank - 1])
+}
+
+fn demo_package() -> Result<ModelPackage> {
+    Ok(ModelPackage::from_parts(
+        framewise_models_demo::package::DEMO_MANIFEST,
+        framewise_models_demo::package::DEMO_ONNX,
+    )?)
+}
+
+/// The MobileNetV2-shaped network (made by models-demo/scripts/make_bench_model.py with the reference
+/// fixtures) and its directory.
+fn bench_package() -> Result<(ModelPackage, PathBuf)> {
+    let dir = framewise_tests::fixtures().join("bench-model");
+    Ok((ModelPackage::read(&dir)?, dir))
+}
+
+fn engine(kind: EngineKind, threads: usize) -> EngineOptions {
+    EngineOptions {
+        kind,
+        onnxruntime_library: (kind != EngineKind::Tract).then(framewise_tests::onnxruntime_library),
+        threads,
+    }
+}
+
+fn time_model(model: &Model, frames: usize) -> Result<(f64, f64)> {
+    let mut rng = SplitMix64::new(3);
+    let inputs: Vec<Vec<f32>> = (0..8)
+        .map(|_| {
+            (0..model.input_len())
+                .map(|_| rng.below(1000) as f32 / 1000.0)
+                .collect()
+        })
+        .collect();
+    for input in inputs.iter().cycle().take(20) {
+        model.infer(input)?;
+    }
+    let mut ms = Vec::with_capacity(frames);
+    for input in inputs.iter().cycle().take(frames) {
+        let t = Instant::now();
+        model.infer(input)?;
+        ms.push(t.elapsed().as_secs_f64() * 1000.0);
+    }
+    Ok(summary(ms))
+}
+
+fn python_reference(onnx: &Path, threads: usize, frames: usize) -> Result<(f64, f64)> {
+    let script = framewise_tests::workspace_root().join("benches/reference_inference.py");
+    let out = Command::new(framewise_tests::python())
+        .arg(&script)
+        .args(["--model".as_ref(), onnx.as_os_str()])
+        .args([
+            "--threads",
+            &threads.to_string(),
+            "--frames",
+            &frames.to_string(),
+        ])
+        .output()
+        .context("running benches/reference_inference.py")?;
+    if !out.status.success() {
+        bail!(
+            "reference_inference.py failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout)?;
+    Ok((
+        v["median_ms"].as_f64().unwrap_or(f64::NAN),
+        v["p99_ms"].as_f64().unwrap_or(f64::NAN),
+    ))
+}
+
+fn inference(frames: usize) -> Result<serde_json::Value> {
+    let scratch = framewise_tests::workspace_root().join("target/bench-scratch");
+    std::fs::create_dir_all(&scratch)?;
+    let demo = demo_package()?;
+    let demo_onnx = scratch.join("phantom-zones.onnx");
+    std::fs::write(&demo_onnx, &demo.onnx[..])?;
+    let (bench, bench_dir) = bench_package()?;
+    let bench_onnx = bench_dir.join(&bench.manifest.file);
+    let mut rows = Vec::new();
+    println!("| model | threads | engine | median ms | p99 ms | median / reference |");
+    println!("|---|---|---|---|---|---|");
+    for (name, package, onnx, n) in [
+        ("demo 96x96 CNN", &demo, &demo_onnx, frames * 10),
+        ("MobileNetV2-shaped 224x224", &bench, &bench_onnx, frames),
+    ] {
+        for threads in [1, 2] {
+            let (ref_med, ref_p99) = python_reference(onnx, threads, n)?;
+            println!(
+                "| {name} | {threads} | Python onnxruntime (reference) | {ref_med:.3} | {ref_p99:.3} | 1.00 |"
+            );
+            rows.push(
+                json!({"model": name, "threads": threads, "engine": "python-onnxruntime",
+                "median_ms": ref_med, "p99_ms": ref_p99}),
+            );
+            for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
+                let model = Model::load_with(package, None, &engine(kind, threads))?;
+                let (med, p99) = time_model(&model, n)?;
+                println!(
+                    "| {name} | {threads} | framewise {kind} | {med:.3} | {p99:.3} | {:.2} |",
+                    med / ref_med
+                );
+                rows.push(
+                    json!({"model": name, "threads": threads, "engine": kind.to_string(),
+                    "median_ms": med, "p99_ms": p99, "ratio": med / ref_med}),
+                );
+            }
+        }
+    }
+    Ok(json!({"inference": rows}))
+}
+
+/// Synthetic frames (invented phantom views) in a format and size.
+fn frames_of(format: PixelFormat, width: u32, height: u32, count: usize) -> Result<Vec<Vec<u8>>> {
+    let mut rng = SplitMix64::new(11);
+    let drum = Drum::random(8, &mut rng);
+    (0..count)
+        .map(|_| {
+            let rgb = drum.render(&random_view(&drum, &mut rng), width, height);
+            encode_from_rgb(&rgb, width, height, format).map_err(|e| anyhow::anyhow!("{e}"))
+        })
+        .collect()
+}
+
+/// BT.601 limited range to RGB, one pixel, in floating point (the plain path's converter; ITU-R BT.601
+/// coefficients).
+fn yuv_pixel(y: u8, u: u8, v: u8) -> [u8; 3] {
+    let (y, u, v) = (
+        1.164 * (y as f32 - 16.0),
+        u as f32 - 128.0,
+        v as f32 - 128.0,
+    );
+    let c = |x: f32| x.round().clamp(0.0, 255.0) as u8;
+    [
+        c(y + 1.596 * v),
+        c(y - 0.392 * u - 0.813 * v),
+        c(y + 2.017 * u),
+    ]
+}
+
+/// The plain path: scalar colour conversion into an `image` buffer, `image`'s Triangle resize, then the
+/// same normalisation loop. What one writes with the `image` crate alone.
+fn plain_prepare(
+    format: PixelFormat,
+    data: &[u8],
+    w: u32,
+    h: u32,
+    spec: &InputSpec,
+    tensor: &mut Vec<f32>,
+) -> Result<()> {
+    let (wu, hu) = (w as usize, h as usize);
+    let rgb: image::RgbImage = match format {
+        PixelFormat::Rgb8 => image::RgbImage::from_raw(w, h, data.to_vec()).context("size")?,
+        PixelFormat::Bgr8 | PixelFormat::Bgra8 | PixelFormat::Rgba8 => {
+            let n = if format == PixelFormat::Bgr8 { 3 } else { 4 };
+            let bgr = format != PixelFormat::Rgba8;
+            image::RgbImage::from_fn(w, h, |x, y| {
+                let i = (y as usize * wu + x as usize) * n;
+                let p = &data[i..i + 3];
+                image::Rgb(if bgr {
+                    [p[2], p[1], p[0]]
+                } else {
+                    [p[0], p[1], p[2]]
+                })
+            })
+        }
+        PixelFormat::Gray8 => image::RgbImage::from_fn(w, h, |x, y| {
+            let g = data[y as usize * wu + x as usize];
+            image::Rgb([g, g, g])
+        }),
+        PixelFormat::Nv12 | PixelFormat::I420 => {
+            let luma = &data[..wu * hu];
+            let chroma = &data[wu * hu..];
+            let q = (wu / 2) * (hu / 2);
+            image::RgbImage::from_fn(w, h, |x, y| {
+                let (cx, cy) = (x as usize / 2, y as usize / 2);
+                let (u, v) = if format == PixelFormat::Nv12 {
+                    let i = cy * wu + cx * 2;
+                    (chroma[i], chroma[i + 1])
+                } else {
+                    let i = cy * (wu / 2) + cx;
+                    (chroma[i], chroma[q + i])
+                };
+                image::Rgb(yuv_pixel(luma[y as usize * wu + x as usize], u, v))
+            })
+        }
+        PixelFormat::Yuyv => image::RgbImage::from_fn(w, h, |x, y| {
+            let i = y as usize * wu * 2 + (x as usize / 2) * 4;
+            let yy = data[i + if x % 2 == 0 { 0 } else { 2 }];
+            image::Rgb(yuv_pixel(yy, data[i + 1], data[i + 3]))
+        }),
+        other => bail!("the plain path does not handle {other}"),
+    };
+    let resized = image::imageops::resize(
+        &rgb,
+        spec.width,
+        spec.height,
+        image::imageops::FilterType::Triangle,
+    );
+    let plane = (spec.width * spec.height) as usize;
+    tensor.resize(3 * plane, 0.0);
+    for (i, p) in resized.pixels().enumerate() {
+        for c in 0..3 {
+            tensor[c * plane + i] =
+                (p.0[c] as f32 * spec.scale as f32 - spec.mean[c] as f32) / spec.std[c] as f32;
+        }
+    }
+    Ok(())
+}
+
+fn preprocess(frames: usize) -> Result<serde_json::Value> {
+    let (bench, _) = bench_package()?;
+    let model = Model::load(&bench, None)?;
+    let spec = &model.manifest().input;
+    let mut rows = Vec::new();
+    println!(
+        "| format | frame | framewise (SIMD) median ms | p99 ms | plain `image` path median ms | plain / SIMD |"
+    );
+    println!("|---|---|---|---|---|---|");
+    let formats = [
+        PixelFormat::Rgb8,
+        PixelFormat::Bgr8,
+        PixelFormat::Rgba8,
+        PixelFormat::Bgra8,
+        PixelFormat::Gray8,
+        PixelFormat::Nv12,
+        PixelFormat::I420,
+        PixelFormat::Yuyv,
+    ];
+    for (w, h) in [(640u32, 480u32), (1280, 720), (1920, 1080)] {
+        for format in formats {
+            let data = frames_of(format, w, h, 4)?;
+            let mut scratch = Scratch::default();
+            let frame_spec = FrameSpec::default();
+            let mut simd = Vec::with_capacity(frames);
+            for (i, d) in data.iter().cycle().take(frames + 5).enumerate() {
+                let frame = FrameRef {
+                    format,
+                    width: w,
+                    height: h,
+                    stride: 0,
+                    data: d,
+                };
+                let t = Instant::now();
+                pipeline::prepare(&model, &frame, &frame_spec, &mut scratch)?;
+                if i >= 5 {
+                    simd.push(t.elapsed().as_secs_f64() * 1000.0);
+                }
+            }
+            let mut tensor = Vec::new();
+            let mut plain = Vec::with_capacity(frames);
+            for (i, d) in data.iter().cycle().take(frames + 2).enumerate() {
+                let t = Instant::now();
+                plain_prepare(format, d, w, h, spec, &mut tensor)?;
+                if i >= 2 {
+                    plain.push(t.elapsed().as_secs_f64() * 1000.0);
+                }
+            }
+            let (s_med, s_p99) = summary(simd);
+            let (p_med, p_p99) = summary(plain);
+            println!(
+                "| {format} | {w}x{h} | {s_med:.3} | {s_p99:.3} | {p_med:.3} | {:.1} |",
+                p_med / s_med
+            );
+            rows.push(
+                json!({"format": format.to_string(), "width": w, "height": h,
+                "simd_median_ms": s_med, "simd_p99_ms": s_p99,
+                "plain_median_ms": p_med, "plain_p99_ms": p_p99}),
+            );
+        }
+    }
+    Ok(json!({"preprocess": rows}))
+}
+
+async fn overhead(frames: usize) -> Result<serde_json::Value> {
+    let (_, bench_dir) = bench_package()?;
+    let mut rows = Vec::new();
+    println!(
+        "| engine | frames | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which transport (outside the server) p50 |"
+    );
+    println!("|---|---|---|---|---|---|---|---|");
+    for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
+        let options = engine(kind, 1);
+        let config = framewise_server::ServerConfig {
+            listen: "127.0.0.1:0".parse()?,
+            demo_model: false,
+            models: vec![framewise_server::config::ModelEntry {
+                path: bench_dir.clone(),
+                sha256: None,
+                engine: None,
+            }],
+            engine: kind,
+            onnxruntime_library: options.onnxruntime_library.clone(),
+            ..Default::default()
+        };
+        let server = framewise_server::start(config, None).await?;
+        let url = format!("http://{}", server.addr);
+        for (format, w, h) in [
+            (PixelFormat::Rgb8, 224u32, 224u32),
+            (PixelFormat::Nv12, 1920, 1080),
+        ] {
+            let data: Vec<prost::bytes::Bytes> = frames_of(format, w, h, 4)?
+                .into_iter()
+                .map(Into::into)
+                .collect();
+            let samples = one_session(&url, format, w, h, &data, frames).await?;
+            let rtt: Vec<f64> = samples.iter().map(|s| s.0).collect();
+            let inf: Vec<f64> = samples.iter().map(|s| s.1).collect();
+            let over: Vec<f64> = samples.iter().map(|s| s.0 - s.1).collect();
+            let pre: Vec<f64> = samples.iter().map(|s| s.2).collect();
+            let outside: Vec<f64> = samples.iter().map(|s| s.0 - s.3).collect();
+            let ((rtt50, _), (inf50, _), (o50, o99)) = (summary(rtt), summary(inf), summary(over));
+            let ((pre50, _), (out50, _)) = (summary(pre), summary(outside));
+            println!(
+                "| {kind} | {format} {w}x{h} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {out50:.3} |"
+            );
+            rows.push(
+                json!({"engine": kind.to_string(), "format": format.to_string(), "width": w,
+                "height": h, "round_trip_p50_ms": rtt50, "inference_p50_ms": inf50,
+                "overhead_p50_ms": o50, "overhead_p99_ms": o99, "preprocess_p50_ms": pre50,
+                "outside_server_p50_ms": out50}),
+            );
+        }
+        server.stop().await?;
+    }
+    Ok(json!({"overhead": rows}))
+}
+
+/// One every-frame session: each frame is sent when the previous answer is back, then a pause to the next
+/// 33 ms tick, so no frame queues behind another. Returns (round trip, server-reported inference, preprocess,
+/// and total in the server), all in ms.
+async fn one_session(
+    url: &str,
+    format: PixelFormat,
+    w: u32,
+    h: u32,
+    data: &[prost::bytes::Bytes],
+    frames: usize,
+) -> Result<Vec<(f64, f64, f64, f64)>> {
+    use pb::frame_analysis_client::FrameAnalysisClient;
+    let channel = tonic::transport::Endpoint::from_shared(url.to_string())?
+        .tcp_nodelay(true)
+        .initial_stream_window_size(framewise_server::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(framewise_server::CONNECTION_WINDOW_BYTES)
+        .connect()
+        .await?;
+    let mut client = FrameAnalysisClient::new(channel)
+        .max_decoding_message_size(64 << 20)
+        .max_encoding_message_size(64 << 20);
+    let (tx, rx) = tokio::sync::mpsc::channel(2);
+    tx.send(pb::SessionInput {
+        item: Some(pb::session_input::Item::Opening(pb::SessionOpening {
+            policy: pb::FramePolicy::EveryFrame as i32,
+            ..Default::default()
+        })),
+    })
+    .await?;
+    let mut answers = client
+        .converse(tokio_stream::wrappers::ReceiverStream::new(rx))
+        .await?
+        .into_inner();
+    answers.message().await?.context("no SessionAccepted")?;
+    let mut out = Vec::with_capacity(frames);
+    let start = Instant::now();
+    for i in 0..frames + 10 {
+        let frame = pb::Frame {
+            seq: i as u64,
+            capture_time_us: 0,
+            format: framewise_server::convert::wire_format(format) as i32,
+            width: w,
+            height: h,
+            stride: 0,
+            data: data[i % data.len()].clone(),
+        };
+        let sent = Instant::now();
+        tx.send(pb::SessionInput {
+            item: Some(pb::session_input::Item::Frame(frame)),
+        })
+        .await?;
+        let answer = answers.message().await?.context("stream ended")?;
+        let rtt = sent.elapsed().as_secs_f64() * 1000.0;
+        let Some(pb::session_output::Item::Answer(a)) = answer.item else {
+            bail!("expected an answer")
+        };
+        let Some(pb::answer::Outcome::Result(r)) = a.outcome else {
+            bail!("frame {i} was not analysed: {:?}", a.outcome)
+        };
+        let t = r.timings.unwrap_or_default();
+        let ms = |us: u64| us as f64 / 1000.0;
+        if i >= 10 {
+            out.push((rtt, ms(t.inference_us), ms(t.preprocess_us), ms(t.total_us)));
+        }
+        let next = Duration::from_micros(33_333 * (i as u64 + 1));
+        if let Some(wait) = next.checked_sub(start.elapsed()) {
+            tokio::time::sleep(wait).await;
+        }
+    }
+    drop(tx);
+    while answers.message().await?.is_some() {}
+    Ok(out)
+}
