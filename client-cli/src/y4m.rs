@@ -78,7 +78,9 @@ impl Y4mInfo {
         let (mut width, mut height, mut rate, mut chroma) =
             (0u32, 0u32, (30u32, 1u32), Chroma::C420);
         for field in fields {
-            let (tag, value) = field.split_at(1.min(field.len()));
+            // The tag is the field's first character; split on its boundary, not on byte 1, so that a
+            // header holding non-ASCII text is skipped like any unknown field instead of panicking.
+            let (tag, value) = field.split_at(field.chars().next().map_or(0, char::len_utf8));
             match tag {
                 "W" => width = value.parse().context("Y4M width")?,
                 "H" => height = value.parse().context("Y4M height")?,
