@@ -439,6 +439,25 @@ fn check_size(
     Ok(())
 }
 
+/// The size a PNG file states in its IHDR chunk, which must come first (ISO/IEC 15948, 5.6), read before
+/// any decoder runs; `None` when the file does not start that way (the decoder then refuses it).
+fn png_declared_size(data: &[u8]) -> Option<(u32, u32)> {
+    let ihdr = data.get(..24)?;
+    if &ihdr[..8] != b"\x89PNG\r\n\x1a\n" || &ihdr[12..16] != b"IHDR" {
+        return None;
+    }
+    let be = |b: &[u8]| u32::from_be_bytes([b[0], b[1], b[2], b[3]]);
+    Some((be(&ihdr[16..20]), be(&ihdr[20..24])))
+}
+
+/// What the PNG decoder may allocate besides the pixel buffer: metadata chunks as read, an inflated ICC
+/// profile (framewise uses neither) and a few rows of 16-bit RGBA. An honest file needs a few times its own
+/// size at most; an inflation bomb is cut off here (the decoder then skips the profile).
+fn png_side_budget(file_len: usize, limits: &FrameLimits) -> u64 {
+    let rows = 4 * 8 * u64::from(limits.max_width);
+    8 * file_len as u64 + rows + (1 << 20)
+}
+
 /// Decodes a PNG or JPEG file to packed RGB8, refusing images beyond the limits before decoding pixels.
 fn decode_file(
     format: PixelFormat,
@@ -451,10 +470,23 @@ fn decode_file(
     if data.is_empty() {
         return Err(fail("the file is empty".into()));
     }
+    if format == PixelFormat::Png
+        && let Some((width, height)) = png_declared_size(data)
+    {
+        check_size(format, width, height, limits)?;
+    }
     let cursor = std::io::Cursor::new(data);
     let mut decoder: Box<dyn ImageDecoder> = match format {
         PixelFormat::Png => {
-            Box::new(image::codecs::png::PngDecoder::new(cursor).map_err(|e| fail(e.to_string()))?)
+            // The PNG decoder reads every chunk before the pixels, inflating an ICC profile whole: give it
+            // a budget so that a small file cannot make it allocate gigabytes. The pixel buffer is not
+            // counted here; the limits below bound it.
+            let mut header_limits = image::Limits::no_limits();
+            header_limits.max_alloc = Some(png_side_budget(data.len(), limits));
+            Box::new(
+                image::codecs::png::PngDecoder::with_limits(cursor, header_limits)
+                    .map_err(|e| fail(e.to_string()))?,
+            )
         }
         _ => Box::new(
             image::codecs::jpeg::JpegDecoder::new(cursor).map_err(|e| fail(e.to_string()))?,
