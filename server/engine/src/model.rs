@@ -281,14 +281,16 @@ impl Model {
             )
         } else {
             check_operators(graph, &onnx)?;
-            let tract = tract_backend(
-                &onnx,
-                &proto,
-                &manifest,
-                batch_symbol.is_some(),
-                input_shape,
-                options.threads,
-            )?;
+            let tract = contain_panic(TRACT_ENGINE, || {
+                tract_backend(
+                    &onnx,
+                    &proto,
+                    &manifest,
+                    batch_symbol.is_some(),
+                    input_shape,
+                    options.threads,
+                )
+            })?;
             (Backend::Tract(Box::new(tract)), TRACT_ENGINE)
         };
         let identity = ModelIdentity {
@@ -307,9 +309,11 @@ impl Model {
         // the engine that does not expose output shapes before running.
         let zeros = vec![0.0f32; model.input_len()];
         let k = model.manifest.classes.len();
-        let raw = model.run(1, &zeros).map_err(|e| ModelError::Engine {
-            engine,
-            reason: e.0,
+        let raw = contain_panic(engine, || {
+            model.run(1, &zeros).map_err(|e| ModelError::Engine {
+                engine,
+                reason: e.0,
+            })
         })?;
         if raw.len() != k {
             return Err(ModelError::Mismatch {
@@ -459,6 +463,25 @@ fn onnxruntime_backend(
     Err(ModelError::Engine {
         engine: ONNXRUNTIME_ENGINE,
         reason: "this build has no ONNX Runtime engine (cargo feature `onnxruntime` off)".into(),
+    })
+}
+
+/// Runs an engine's preparation of a graph, turning a panic inside the engine into a refusal of the model:
+/// a corrupt file can reach engine code that indexes without checking (a bit-flipped `Flatten` axis did).
+fn contain_panic<T>(
+    engine: &'static str,
+    prepare: impl FnOnce() -> Result<T, ModelError>,
+) -> Result<T, ModelError> {
+    std::panic::catch_unwind(std::panic::AssertUnwindSafe(prepare)).unwrap_or_else(|payload| {
+        let what = payload
+            .downcast_ref::<&str>()
+            .map(|s| s.to_string())
+            .or_else(|| payload.downcast_ref::<String>().cloned())
+            .unwrap_or_else(|| "without a message".into());
+        Err(ModelError::Engine {
+            engine,
+            reason: format!("it failed inside the engine ({what}); the file may be corrupt"),
+        })
     })
 }
 
