@@ -144,6 +144,25 @@ pub struct BenchReport {
     pub end_to_end_ms: Millis,
     /// Server stages as the answers report them.
     pub server_stages_ms: Vec<(String, Millis)>,
+    /// How the sessions and answers were spread over the servers (they add up to the totals above).
+    pub per_server: Vec<ServerShare>,
+}
+
+/// One server's part of a bench run.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct ServerShare {
+    /// The server.
+    pub server: String,
+    /// Sessions assigned to it.
+    pub sessions: Vec<usize>,
+    /// Sessions that failed on it (session numbers; the reasons are in `failed_sessions`).
+    pub failed_sessions: Vec<usize>,
+    /// Frames it answered with a result.
+    pub results: u64,
+    /// Frames it skipped.
+    pub skipped: u64,
+    /// Frames it answered with an error.
+    pub errors: u64,
 }
 
 struct Shared {
@@ -155,6 +174,7 @@ struct Shared {
     late: u64,
     model: Option<pb::ModelIdentity>,
     failures: Vec<String>,
+    shares: Vec<ServerShare>,
 }
 
 /// Synthetic frames: a few phantom views, encoded once, sent in turn.
@@ -177,7 +197,8 @@ fn synthetic_frames(
 }
 
 /// Runs the benchmark; returns the report and whether the gates passed.
-pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
+pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
+    args.servers = client::expand_endpoints(&args.servers).await;
     anyhow::ensure!(
         args.sessions >= 1 && args.sessions <= 1024,
         "--sessions must be 1..=1024"
@@ -208,13 +229,25 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
         late: 0,
         model: None,
         failures: Vec::new(),
+        shares: args
+            .servers
+            .iter()
+            .map(|s| ServerShare {
+                server: s.clone(),
+                ..Default::default()
+            })
+            .collect(),
     }));
     let interval = Duration::from_secs_f64(1.0 / args.fps);
     let per_session = (args.seconds * args.fps).round().max(1.0) as u64;
     let start = Instant::now() + Duration::from_millis(300);
     let mut tasks = Vec::new();
     for s in 0..args.sessions {
-        let url = args.servers[s % args.servers.len()].clone();
+        let server = s % args.servers.len();
+        let url = args.servers[server].clone();
+        if let Ok(mut sh) = shared.lock() {
+            sh.shares[server].sessions.push(s);
+        }
         let (frames, shared, opening, token) = (
             frames.clone(),
             shared.clone(),
@@ -227,6 +260,7 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
         tasks.push(tokio::spawn(async move {
             let outcome = one_session(
                 &url,
+                server,
                 token.as_deref(),
                 opening,
                 frames,
@@ -244,6 +278,7 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
                 && let Ok(mut sh) = shared.lock()
             {
                 sh.failures.push(format!("session {s} on {url}: {e:#}"));
+                sh.shares[server].failed_sessions.push(s);
             }
         }));
     }
@@ -281,6 +316,7 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
             .iter()
             .filter_map(|p| sh.stages.stage(p.stage).map(|h| (p.stage.to_string(), millis(h))))
             .collect(),
+        per_server: sh.shares.clone(),
     };
     if let Some(path) = &args.hdr_log {
         write_hdr_log(&sh.end_to_end, path)?;
@@ -321,6 +357,7 @@ pub async fn run(args: BenchArgs) -> Result<(BenchReport, bool)> {
 #[allow(clippy::too_many_arguments)]
 async fn one_session(
     url: &str,
+    server: usize,
     token: Option<&str>,
     opening: pb::SessionOpening,
     frames: Arc<Vec<prost::bytes::Bytes>>,
@@ -379,6 +416,7 @@ async fn one_session(
         match a.outcome {
             Some(pb::answer::Outcome::Result(r)) => {
                 sh.results += 1;
+                sh.shares[server].results += 1;
                 sh.end_to_end
                     .saturating_record(e2e.clamp(1, MAX_TRACKED_US));
                 if e2e > late_us {
@@ -394,8 +432,14 @@ async fn one_session(
                     });
                 }
             }
-            Some(pb::answer::Outcome::Skipped(_)) => sh.skipped += 1,
-            _ => sh.failed += 1,
+            Some(pb::answer::Outcome::Skipped(_)) => {
+                sh.skipped += 1;
+                sh.shares[server].skipped += 1;
+            }
+            _ => {
+                sh.failed += 1;
+                sh.shares[server].errors += 1;
+            }
         }
     }
     sender.await.context("the frame sender failed")?;
@@ -451,6 +495,29 @@ pub fn human(r: &BenchReport) -> String {
         &["latency (ms)", "count", "p50", "p90", "p99", "p99.9", "max"],
         &rows,
     ));
+    if r.per_server.len() > 1 {
+        let rows: Vec<Vec<String>> = r
+            .per_server
+            .iter()
+            .map(|s| {
+                vec![
+                    s.server.clone(),
+                    s.sessions.len().to_string(),
+                    s.failed_sessions.len().to_string(),
+                    s.results.to_string(),
+                    s.skipped.to_string(),
+                    s.errors.to_string(),
+                ]
+            })
+            .collect();
+        out.push('\n');
+        out.push_str(&table(
+            &[
+                "server", "sessions", "failed", "results", "skipped", "errors",
+            ],
+            &rows,
+        ));
+    }
     for f in &r.failed_sessions {
         out.push_str(&format!("failed: {f}\n"));
     }

@@ -23,7 +23,7 @@ pub async fn connect(url: &str) -> Result<FrameAnalysisClient<Channel>> {
     let channel = endpoint
         .connect()
         .await
-        .with_context(|| format!("connecting to {url}"))?;
+        .map_err(|e| ServerFailure(format!("connecting to {url}: {e}")))?;
     Ok(FrameAnalysisClient::new(channel)
         .max_decoding_message_size(MAX_MESSAGE_BYTES)
         .max_encoding_message_size(MAX_MESSAGE_BYTES))
@@ -80,9 +80,72 @@ pub async fn open(
     }
 }
 
-/// A gRPC status as an error a person can act on.
+/// A failure of the server or of the way to it (unreachable, gone mid-stream, overloaded), as opposed to a
+/// refusal of what was asked. A recording can be re-run on another server after one of these.
+#[derive(Debug)]
+pub struct ServerFailure(pub String);
+
+impl std::fmt::Display for ServerFailure {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for ServerFailure {}
+
+/// True when the error (or one of its causes) is a [`ServerFailure`].
+pub fn is_server_failure(e: &anyhow::Error) -> bool {
+    e.chain().any(|c| c.is::<ServerFailure>())
+}
+
+/// A gRPC status as an error a person can act on; statuses that say the server or the connection failed
+/// (rather than that the request was wrong) are marked as [`ServerFailure`].
 pub fn status_error(status: tonic::Status) -> anyhow::Error {
-    anyhow::anyhow!("server answered {:?}: {}", status.code(), status.message())
+    let text = format!("server answered {:?}: {}", status.code(), status.message());
+    match status.code() {
+        tonic::Code::Unavailable
+        | tonic::Code::Unknown
+        | tonic::Code::Internal
+        | tonic::Code::Cancelled
+        | tonic::Code::Aborted
+        | tonic::Code::DeadlineExceeded
+        | tonic::Code::ResourceExhausted => anyhow::Error::new(ServerFailure(text)),
+        _ => anyhow::anyhow!(text),
+    }
+}
+
+/// The endpoints behind a list of server URLs: an `http://` URL whose host name resolves to several
+/// addresses becomes one URL per address (a headless service's name, for instance); IP literals, single
+/// addresses and `https://` URLs (whose certificate names the host) stay as given. Duplicates are dropped.
+pub async fn expand_endpoints(urls: &[String]) -> Vec<String> {
+    let mut out: Vec<String> = Vec::new();
+    for url in urls {
+        let mut expanded = Vec::new();
+        if let Ok(uri) = url.parse::<tonic::codegen::http::Uri>()
+            && uri.scheme_str() == Some("http")
+            && let Some(host) = uri.host()
+            && host.parse::<std::net::IpAddr>().is_err()
+        {
+            let port = uri.port_u16().unwrap_or(80);
+            if let Ok(addrs) = tokio::net::lookup_host((host, port)).await {
+                let mut addrs: Vec<std::net::SocketAddr> = addrs.collect();
+                addrs.sort();
+                addrs.dedup();
+                if addrs.len() > 1 {
+                    expanded = addrs.iter().map(|a| format!("http://{a}")).collect();
+                }
+            }
+        }
+        if expanded.is_empty() {
+            expanded.push(url.clone());
+        }
+        for e in expanded {
+            if !out.contains(&e) {
+                out.push(e);
+            }
+        }
+    }
+    out
 }
 
 /// Sends one frame on a session; false when the session has ended.

@@ -9,7 +9,7 @@ use std::sync::Arc;
 
 use anyhow::{Context, Result};
 use clap::{Parser, Subcommand};
-use framewise_cli::{bench, demo, models, plot, recording, replay, score, settings};
+use framewise_cli::{bench, client, demo, models, plot, recording, replay, score, settings};
 
 /// framewise: per-class probabilities for every frame of a medical video stream, CPU only.
 ///
@@ -41,13 +41,15 @@ enum Command {
 
 #[derive(clap::Args)]
 struct ServerFlags {
-    /// Server URL.
+    /// Server URL. `replay` takes several (repeat the flag, or give a host name with several addresses) and
+    /// moves to the next when one fails, re-running the recording from its start there.
     #[arg(
-        long,
+        long = "server",
         default_value = "http://127.0.0.1:50051",
-        env = "FRAMEWISE_SERVER"
+        env = "FRAMEWISE_SERVER",
+        value_delimiter = ','
     )]
-    server: String,
+    servers: Vec<String>,
     /// Bearer token for the server.
     #[arg(long, env = "FRAMEWISE_TOKEN", hide_env_values = true)]
     token: Option<String>,
@@ -162,7 +164,8 @@ async fn run(cli: Cli) -> Result<()> {
             Ok(())
         }
         Command::Models(args) => {
-            models::run(&args.server.server, args.server.token.as_deref(), args.json).await
+            let server = args.server.servers.first().map_or("", String::as_str);
+            models::run(server, args.server.token.as_deref(), args.json).await
         }
     }
 }
@@ -177,17 +180,28 @@ async fn replay_command(args: ReplayArgs) -> Result<()> {
         eprintln!("framewise: warning: {w}");
     }
     let total = recording.frames.len();
-    let target = if args.offline {
-        replay::Target::Offline {
+    let recording = Arc::new(recording);
+    let targets: Vec<replay::Target> = if args.offline {
+        vec![replay::Target::Offline {
             model: args.model.clone(),
             engine: args.engine.options(),
-        }
+        }]
     } else {
-        replay::Target::Server {
-            url: args.server.server.clone(),
-            token: args.server.token.clone(),
-        }
+        client::expand_endpoints(&args.server.servers)
+            .await
+            .into_iter()
+            .map(|url| replay::Target::Server {
+                url,
+                token: args.server.token.clone(),
+            })
+            .collect()
     };
+    anyhow::ensure!(!targets.is_empty(), "give a --server");
+    anyhow::ensure!(
+        targets.len() == 1 || args.out.is_some(),
+        "several servers need --out: after a server fails, the recording is re-run from its start on the next \
+         one and its output replaces what was written"
+    );
     let pacing = if args.speed > 0.0 {
         replay::Pacing::Speed(args.speed)
     } else {
@@ -203,34 +217,57 @@ async fn replay_command(args: ReplayArgs) -> Result<()> {
         );
         bar
     });
-    let mut unreadable = 0usize;
-    let tally = replay::replay(
-        Arc::new(recording),
-        &target,
-        &args.session,
-        pacing,
-        args.out.as_deref(),
-        args.resume,
-        |r| {
-            if let Some(bar) = &progress {
-                bar.inc(1);
-            }
-            if r.kind == "error" {
-                unreadable += 1;
-                let message = format!(
-                    "frame {} ({}): {}",
-                    r.seq,
-                    r.name,
-                    r.error.as_deref().unwrap_or("error")
+    let mut attempt = 0;
+    let tally = loop {
+        let target = &targets[attempt];
+        let mut unreadable = 0usize;
+        // After a failover the recording starts again from its first frame (filter state cannot move
+        // between servers) and the output is rewritten, so no frame appears twice.
+        let resume = args.resume && attempt == 0;
+        let outcome = replay::replay(
+            recording.clone(),
+            target,
+            &args.session,
+            pacing,
+            args.out.as_deref(),
+            resume,
+            |r| {
+                if let Some(bar) = &progress {
+                    bar.inc(1);
+                }
+                if r.kind == "error" {
+                    unreadable += 1;
+                    let message = format!(
+                        "frame {} ({}): {}",
+                        r.seq,
+                        r.name,
+                        r.error.as_deref().unwrap_or("error")
+                    );
+                    match &progress {
+                        Some(bar) => bar.println(format!("framewise: {message}")),
+                        None => eprintln!("framewise: {message}"),
+                    }
+                }
+            },
+        )
+        .await;
+        match outcome {
+            Ok(tally) => break tally,
+            Err(e) if attempt + 1 < targets.len() && client::is_server_failure(&e) => {
+                attempt += 1;
+                let next = &targets[attempt];
+                eprintln!(
+                    "framewise: {} failed: {e:#}; re-running the recording from its start on {}",
+                    target.describe(),
+                    next.describe()
                 );
-                match &progress {
-                    Some(bar) => bar.println(format!("framewise: {message}")),
-                    None => eprintln!("framewise: {message}"),
+                if let Some(bar) = &progress {
+                    bar.set_position(0);
                 }
             }
-        },
-    )
-    .await?;
+            Err(e) => return Err(e),
+        }
+    };
     if let Some(bar) = progress {
         bar.finish_and_clear();
     }

@@ -100,6 +100,16 @@ pub enum Target {
     },
 }
 
+impl Target {
+    /// The server's URL, or "the offline engine".
+    pub fn describe(&self) -> String {
+        match self {
+            Target::Server { url, .. } => url.clone(),
+            Target::Offline { .. } => "the offline engine".into(),
+        }
+    }
+}
+
 /// What a replay did.
 #[derive(Debug, Clone, Default)]
 pub struct ReplayTally {
@@ -448,7 +458,10 @@ pub async fn replay(
                 emit(local, &mut tally, &mut writer)?;
             }
             if summary.is_none() {
-                bail!("the server closed the session without a summary");
+                return Err(client::ServerFailure(format!(
+                    "{url} closed the session without a summary"
+                ))
+                .into());
             }
         }
     }
