@@ -459,7 +459,30 @@ fn png_side_budget(file_len: usize, limits: &FrameLimits) -> u64 {
 }
 
 /// Decodes a PNG or JPEG file to packed RGB8, refusing images beyond the limits before decoding pixels.
+///
+/// A decoder that panics on a malformed file (one JPEG decoder's SIMD transform unwraps a slice that a
+/// broken header made too short) refuses that frame like any other decoding error.
 fn decode_file(
+    format: PixelFormat,
+    data: &[u8],
+    limits: &FrameLimits,
+    out: &mut Vec<u8>,
+) -> Result<(u32, u32), FrameError> {
+    let decode = std::panic::AssertUnwindSafe(|| decode_file_unguarded(format, data, limits, out));
+    std::panic::catch_unwind(decode).unwrap_or_else(|payload| {
+        let what = payload
+            .downcast_ref::<&str>()
+            .map(|s| s.to_string())
+            .or_else(|| payload.downcast_ref::<String>().cloned())
+            .unwrap_or_else(|| "without a message".into());
+        Err(FrameError::DecodeFailed {
+            format,
+            reason: format!("the decoder failed on this file ({what})"),
+        })
+    })
+}
+
+fn decode_file_unguarded(
     format: PixelFormat,
     data: &[u8],
     limits: &FrameLimits,
