@@ -54,6 +54,21 @@ enum Bench {
         #[arg(long, default_value_t = 60)]
         frames: usize,
     },
+    /// Bare throughput: `workers` threads running single frames on one shared model, as the server's workers do.
+    Throughput {
+        /// tract or onnxruntime.
+        #[arg(long)]
+        engine: EngineKind,
+        /// Threads running inferences at once.
+        #[arg(long, default_value_t = 2)]
+        workers: usize,
+        /// Seconds to run.
+        #[arg(long, default_value_t = 5.0)]
+        seconds: f64,
+        /// Model package (default: the MobileNetV2-shaped network).
+        #[arg(long)]
+        model: Option<PathBuf>,
+    },
     /// Service overhead: end-to-end through a loopback server minus the reported inference time.
     Overhead {
         /// Frames per configuration.
@@ -75,6 +90,12 @@ fn run() -> Result<()> {
     let figures = match args.command {
         Bench::Inference { frames } => inference(frames)?,
         Bench::Preprocess { frames } => preprocess(frames)?,
+        Bench::Throughput {
+            engine: kind,
+            workers,
+            seconds,
+            model,
+        } => throughput(kind, workers, seconds, model)?,
         Bench::Overhead { frames } => {
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
@@ -224,6 +245,41 @@ fn inference(frames: usize) -> Result<serde_json::Value> {
         }
     }
     Ok(json!({"inference": rows}))
+}
+
+fn throughput(
+    kind: EngineKind,
+    workers: usize,
+    seconds: f64,
+    model: Option<PathBuf>,
+) -> Result<serde_json::Value> {
+    let bench = match model {
+        Some(dir) => ModelPackage::read(&dir)?,
+        None => bench_package()?.0,
+    };
+    let model = Model::load_with(&bench, None, &engine(kind, 1))?;
+    let input: Vec<f32> = (0..model.input_len()).map(|i| (i % 255) as f32 / 255.0).collect();
+    let stop = Instant::now() + Duration::from_secs_f64(seconds);
+    let start = Instant::now();
+    let frames: usize = std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..workers.max(1))
+            .map(|_| {
+                scope.spawn(|| {
+                    let mut n = 0usize;
+                    while Instant::now() < stop {
+                        if model.infer(&input).is_ok() {
+                            n += 1;
+                        }
+                    }
+                    n
+                })
+            })
+            .collect();
+        handles.into_iter().map(|h| h.join().unwrap_or(0)).sum()
+    });
+    let fps = frames as f64 / start.elapsed().as_secs_f64();
+    println!("{}", json!({"engine": kind.to_string(), "workers": workers, "frames_per_second": fps}));
+    Ok(json!({"throughput": {"engine": kind.to_string(), "workers": workers, "frames_per_second": fps}}))
 }
 
 /// Synthetic frames (invented phantom views) in a format and size.
