@@ -258,7 +258,9 @@ fn throughput(
         None => bench_package()?.0,
     };
     let model = Model::load_with(&bench, None, &engine(kind, 1))?;
-    let input: Vec<f32> = (0..model.input_len()).map(|i| (i % 255) as f32 / 255.0).collect();
+    let input: Vec<f32> = (0..model.input_len())
+        .map(|i| (i % 255) as f32 / 255.0)
+        .collect();
     let stop = Instant::now() + Duration::from_secs_f64(seconds);
     let start = Instant::now();
     let frames: usize = std::thread::scope(|scope| {
@@ -278,8 +280,13 @@ fn throughput(
         handles.into_iter().map(|h| h.join().unwrap_or(0)).sum()
     });
     let fps = frames as f64 / start.elapsed().as_secs_f64();
-    println!("{}", json!({"engine": kind.to_string(), "workers": workers, "frames_per_second": fps}));
-    Ok(json!({"throughput": {"engine": kind.to_string(), "workers": workers, "frames_per_second": fps}}))
+    println!(
+        "{}",
+        json!({"engine": kind.to_string(), "workers": workers, "frames_per_second": fps})
+    );
+    Ok(
+        json!({"throughput": {"engine": kind.to_string(), "workers": workers, "frames_per_second": fps}}),
+    )
 }
 
 /// Synthetic frames (invented phantom views) in a format and size.
