@@ -1175,7 +1175,12 @@ async fn a_client_that_never_reads_again_is_ended_after_the_idle_timeout_and_fre
     }
     // Both slots are taken, and both clients' sends stop once flow control holds them.
     let mut last: Vec<u64> = vec![0; stuck.len()];
+    let waited = Instant::now();
     let blocked_at = loop {
+        assert!(
+            waited.elapsed() < Duration::from_secs(30),
+            "the clients' sends never blocked: {last:?} frames sent"
+        );
         tokio::time::sleep(Duration::from_millis(300)).await;
         let now: Vec<u64> = stuck.iter().map(|s| s.3.load(Ordering::Relaxed)).collect();
         if now == last && now.iter().all(|n| *n > 0) {
