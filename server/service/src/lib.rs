@@ -38,8 +38,9 @@ use crate::stats::ServerStats;
 
 /// Time the transport gets to close connections after the sessions ended.
 pub const TRANSPORT_CLOSE_GRACE: Duration = Duration::from_secs(2);
-/// HTTP/2 receive window per stream (session): bytes a client may send before the server has read them.
-pub const STREAM_WINDOW_BYTES: u32 = 8 << 20;
+/// HTTP/2 receive window per stream (session): bytes a client may send before the server has read them. 4 MiB
+/// holds a whole 1920x1080 NV12 frame (3 MB) and bounds what a stuck client can leave buffered.
+pub const STREAM_WINDOW_BYTES: u32 = 4 << 20;
 /// HTTP/2 receive window per connection (all its sessions together).
 pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 /// Largest HTTP/2 frame the server accepts (the protocol allows up to 16 MiB - 1; the default is 16 KiB).
