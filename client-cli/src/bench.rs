@@ -316,7 +316,15 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
             .iter()
             .filter_map(|p| sh.stages.stage(p.stage).map(|h| (p.stage.to_string(), millis(h))))
             .collect(),
-        per_server: sh.shares.clone(),
+        per_server: sh
+            .shares
+            .iter()
+            .map(|s| {
+                let mut s = s.clone();
+                s.failed_sessions.sort_unstable();
+                s
+            })
+            .collect(),
     };
     if let Some(path) = &args.hdr_log {
         write_hdr_log(&sh.end_to_end, path)?;

@@ -101,6 +101,11 @@ pub fn is_server_failure(e: &anyhow::Error) -> bool {
 /// A gRPC status as an error a person can act on; statuses that say the server or the connection failed
 /// (rather than that the request was wrong) are marked as [`ServerFailure`].
 pub fn status_error(status: tonic::Status) -> anyhow::Error {
+    let failed = format!(
+        "the server failed or the connection to it broke ({:?}: {})",
+        status.code(),
+        status.message()
+    );
     let text = format!("server answered {:?}: {}", status.code(), status.message());
     match status.code() {
         tonic::Code::Unavailable
@@ -109,7 +114,7 @@ pub fn status_error(status: tonic::Status) -> anyhow::Error {
         | tonic::Code::Cancelled
         | tonic::Code::Aborted
         | tonic::Code::DeadlineExceeded
-        | tonic::Code::ResourceExhausted => anyhow::Error::new(ServerFailure(text)),
+        | tonic::Code::ResourceExhausted => anyhow::Error::new(ServerFailure(failed)),
         _ => anyhow::anyhow!(text),
     }
 }

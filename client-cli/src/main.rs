@@ -265,6 +265,12 @@ async fn replay_command(args: ReplayArgs) -> Result<()> {
                     bar.set_position(0);
                 }
             }
+            Err(e) if client::is_server_failure(&e) && args.out.is_some() => {
+                return Err(e.context(
+                    "the replay stopped; the whole lines written so far are kept: run the same command with \
+                     --resume to answer the remaining frames",
+                ));
+            }
             Err(e) => return Err(e),
         }
     };

@@ -129,12 +129,13 @@ async fn bench_spreads_sessions_over_three_servers_and_names_those_lost_with_a_k
         assert_eq!(sessions, vec![i as u64, i as u64 + 3], "server {i}");
     }
     // Exactly the killed server's sessions are reported as failed, each naming that server.
-    let failed: Vec<u64> = shares[2]["failed_sessions"]
+    let mut failed: Vec<u64> = shares[2]["failed_sessions"]
         .as_array()
         .expect("failed")
         .iter()
         .filter_map(|v| v.as_u64())
         .collect();
+    failed.sort_unstable();
     assert_eq!(failed, vec![2, 5], "the killed server's sessions");
     for share in &shares[..2] {
         assert_eq!(share["failed_sessions"].as_array().map(Vec::len), Some(0));
