@@ -396,18 +396,9 @@ fn preprocess(frames: usize) -> Result<serde_json::Value> {
         "| format | frame | framewise (SIMD) median ms | p99 ms | plain `image` path median ms | plain / SIMD |"
     );
     println!("|---|---|---|---|---|---|");
-    let formats = [
-        PixelFormat::Rgb8,
-        PixelFormat::Bgr8,
-        PixelFormat::Rgba8,
-        PixelFormat::Bgra8,
-        PixelFormat::Gray8,
-        PixelFormat::Nv12,
-        PixelFormat::I420,
-        PixelFormat::Yuyv,
-    ];
+    let formats = PixelFormat::ALL.into_iter().filter(|f| !f.is_encoded());
     for (w, h) in [(640u32, 480u32), (1280, 720), (1920, 1080)] {
-        for format in formats {
+        for format in formats.clone() {
             let data = frames_of(format, w, h, 4)?;
             let mut scratch = Scratch::default();
             let frame_spec = FrameSpec::default();

@@ -40,6 +40,40 @@ pub fn binary(name: &str) -> PathBuf {
     path
 }
 
+/// A loopback port that was free a moment ago (bound to port 0, then released).
+pub fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .map(|a| a.port())
+        .expect("a free loopback port")
+}
+
+/// Writes a synthetic phantom sweep recording (frames and labels.csv) with `framewise-synth` into `dir`
+/// and returns its frame count.
+pub fn synth_sweep(dir: &Path, seconds: u32, width: u32, height: u32, seed: u64) -> u64 {
+    let synth = Command::new(binary("framewise-synth"))
+        .args(["sweep", "--seconds", &seconds.to_string(), "--fps", "30"])
+        .args([
+            "--width",
+            &width.to_string(),
+            "--height",
+            &height.to_string(),
+        ])
+        .args(["--seed", &seed.to_string(), "--out"])
+        .arg(dir)
+        .output()
+        .expect("framewise-synth runs");
+    assert!(
+        synth.status.success(),
+        "{}",
+        String::from_utf8_lossy(&synth.stderr)
+    );
+    framewise_cli::recording::Recording::open(dir)
+        .expect("recording opens")
+        .frames
+        .len() as u64
+}
+
 /// The embedded demo package.
 pub fn demo_package() -> ModelPackage {
     ModelPackage::from_parts(

@@ -18,7 +18,7 @@
 use std::collections::{BTreeMap, HashMap};
 use std::fs::File;
 use std::future::Future;
-use std::net::{SocketAddr, TcpListener};
+use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, ExitStatus, Stdio};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -27,7 +27,7 @@ use std::time::{Duration, Instant};
 
 use framewise_models_demo::phantom::{Drum, random_view};
 use framewise_proto::v1 as pb;
-use framewise_tests::{Rng, binary, workspace_root};
+use framewise_tests::{Rng, binary, free_port, synth_sweep, workspace_root};
 use pb::frame_analysis_client::FrameAnalysisClient;
 use tokio::sync::mpsc;
 use tokio::task::JoinHandle;
@@ -56,14 +56,6 @@ fn scratch(name: &str) -> PathBuf {
     let _ = std::fs::remove_dir_all(&dir);
     std::fs::create_dir_all(&dir).expect("scratch dir");
     dir
-}
-
-/// A loopback port that was free a moment ago (bound to port 0, then released).
-fn free_port() -> u16 {
-    TcpListener::bind("127.0.0.1:0")
-        .and_then(|l| l.local_addr())
-        .map(|a| a.port())
-        .expect("a free loopback port")
 }
 
 fn loopback(port: u16) -> SocketAddr {
@@ -1307,21 +1299,7 @@ fn replay_command(rec: &Path, url: &str, out: &Path) -> Command {
 async fn replay_survives_a_server_killed_mid_way_and_resumes_to_every_frame_once() {
     let dir = scratch("kill-restart");
     let rec = dir.join("rec");
-    let synth = Command::new(binary("framewise-synth"))
-        .args(["sweep", "--seconds", "6", "--fps", "30"])
-        .args(["--width", "320", "--height", "240", "--seed", "7", "--out"])
-        .arg(&rec)
-        .output()
-        .expect("framewise-synth runs");
-    assert!(
-        synth.status.success(),
-        "{}",
-        String::from_utf8_lossy(&synth.stderr)
-    );
-    let frames = framewise_cli::recording::Recording::open(&rec)
-        .expect("recording opens")
-        .frames
-        .len() as u64;
+    let frames = synth_sweep(&rec, 6, 320, 240, 7);
     assert_eq!(frames, 180);
 
     let mut server = ServerProcess::start(&dir, &[]).await;

@@ -293,13 +293,7 @@ fn contained_panics() -> String {
     }
 }
 
-fn panic_text(payload: &(dyn std::any::Any + Send)) -> String {
-    payload
-        .downcast_ref::<&str>()
-        .map(|s| s.to_string())
-        .or_else(|| payload.downcast_ref::<String>().cloned())
-        .unwrap_or_else(|| "a panic without a message".into())
-}
+use framewise_engine::panic_text;
 
 /// Aborts the process, after saying which input hung, when one input runs past [`WATCHDOG_ABORT`].
 struct Watchdog {

@@ -1,12 +1,11 @@
 //! Sessions spread over several server processes by the client: `bench` across three servers with one killed
 //! mid-run, and `replay` moving to the next server when its server dies.
 
-use std::net::TcpListener;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-use framewise_tests::{binary, workspace_root};
+use framewise_tests::{binary, free_port, synth_sweep, workspace_root};
 use tonic_health::pb::HealthCheckRequest;
 use tonic_health::pb::health_client::HealthClient;
 
@@ -18,10 +17,7 @@ struct Server {
 
 impl Server {
     async fn start() -> Self {
-        let port = TcpListener::bind("127.0.0.1:0")
-            .and_then(|l| l.local_addr())
-            .map(|a| a.port())
-            .expect("a free loopback port");
+        let port = free_port();
         let child = Command::new(binary("framewise-server"))
             .args(["--listen", &format!("127.0.0.1:{port}")])
             .env("NO_COLOR", "1")
@@ -177,21 +173,7 @@ async fn bench_spreads_sessions_over_three_servers_and_names_those_lost_with_a_k
 async fn replay_moves_to_the_next_server_and_writes_every_frame_once() {
     let dir = scratch("spread-replay");
     let rec = dir.join("rec");
-    let synth = Command::new(binary("framewise-synth"))
-        .args(["sweep", "--seconds", "5", "--fps", "30"])
-        .args(["--width", "160", "--height", "120", "--seed", "3", "--out"])
-        .arg(&rec)
-        .output()
-        .expect("framewise-synth runs");
-    assert!(
-        synth.status.success(),
-        "{}",
-        String::from_utf8_lossy(&synth.stderr)
-    );
-    let frames = framewise_cli::recording::Recording::open(&rec)
-        .expect("recording opens")
-        .frames
-        .len() as u64;
+    let frames = synth_sweep(&rec, 5, 160, 120, 3);
     let mut first = Server::start().await;
     let second = Server::start().await;
     let out = dir.join("out.jsonl");

@@ -209,7 +209,7 @@ pub(crate) mod onnxruntime {
             output: &str,
         ) -> Result<Self, String> {
             runtime(path).map_err(|e| e.0)?;
-            let model = Self {
+            let mut model = Self {
                 onnx,
                 threads: threads.max(1),
                 input: input.to_string(),
@@ -220,17 +220,11 @@ pub(crate) mod onnxruntime {
             let session = model.session()?;
             if model.output.is_empty() {
                 // The manifest names no output: the graph's first one.
-                let first = session
+                model.output = session
                     .outputs()
                     .first()
                     .map(|o| o.name().to_string())
                     .ok_or("the model has no output")?;
-                let model = Self {
-                    output: first,
-                    ..model
-                };
-                model.give_back(session);
-                return Ok(model);
             }
             model.give_back(session);
             Ok(model)

@@ -470,11 +470,7 @@ fn decode_file(
 ) -> Result<(u32, u32), FrameError> {
     let decode = std::panic::AssertUnwindSafe(|| decode_file_unguarded(format, data, limits, out));
     std::panic::catch_unwind(decode).unwrap_or_else(|payload| {
-        let what = payload
-            .downcast_ref::<&str>()
-            .map(|s| s.to_string())
-            .or_else(|| payload.downcast_ref::<String>().cloned())
-            .unwrap_or_else(|| "without a message".into());
+        let what = crate::panic_text(payload.as_ref());
         Err(FrameError::DecodeFailed {
             format,
             reason: format!("the decoder failed on this file ({what})"),

@@ -36,3 +36,12 @@ pub use manifest::Manifest;
 pub use model::{Model, ModelError, ModelIdentity, ModelPackage};
 pub use pipeline::{Analyser, FrameSpec, Outcome, StreamSettings};
 pub use quality::QualitySpec;
+
+/// The message a panic carried, for turning a panic inside a library into a clear refusal.
+pub fn panic_text(payload: &(dyn std::any::Any + Send)) -> String {
+    payload
+        .downcast_ref::<&str>()
+        .map(|s| s.to_string())
+        .or_else(|| payload.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "without a message".into())
+}

@@ -473,11 +473,7 @@ fn contain_panic<T>(
     prepare: impl FnOnce() -> Result<T, ModelError>,
 ) -> Result<T, ModelError> {
     std::panic::catch_unwind(std::panic::AssertUnwindSafe(prepare)).unwrap_or_else(|payload| {
-        let what = payload
-            .downcast_ref::<&str>()
-            .map(|s| s.to_string())
-            .or_else(|| payload.downcast_ref::<String>().cloned())
-            .unwrap_or_else(|| "without a message".into());
+        let what = crate::panic_text(payload.as_ref());
         Err(ModelError::Engine {
             engine,
             reason: format!("it failed inside the engine ({what}); the file may be corrupt"),
