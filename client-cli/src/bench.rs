@@ -63,9 +63,13 @@ pub struct BenchArgs {
     /// Write the end-to-end latency histogram here (HdrHistogram V2 log, base64).
     #[arg(long)]
     pub hdr_log: Option<PathBuf>,
-    /// Write the latency percentile plot (SVG) here.
+    /// Write the latency percentile plot here (.svg or .png).
     #[arg(long)]
     pub plot: Option<PathBuf>,
+    /// Write every answered frame's end-to-end latency here (CSV: session, seq, server, end_to_end_us), for
+    /// analysis outside framewise. Held in memory until the run ends (about 24 bytes per frame).
+    #[arg(long)]
+    pub latencies: Option<PathBuf>,
     /// Release gate: fail (exit 3) when the end-to-end p99 exceeds this many ms.
     #[arg(long)]
     pub max_p99_ms: Option<f64>,
@@ -175,6 +179,8 @@ struct Shared {
     model: Option<pb::ModelIdentity>,
     failures: Vec<String>,
     shares: Vec<ServerShare>,
+    /// (session, seq, server, end-to-end µs) of every result, kept only when `--latencies` asks for them.
+    raw: Option<Vec<(u32, u64, u32, u64)>>,
 }
 
 /// Synthetic frames: a few phantom views, encoded once, sent in turn.
@@ -212,6 +218,9 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         "--seconds must be in (0, 86400]"
     );
     anyhow::ensure!(!args.servers.is_empty(), "give at least one --server");
+    if let Some(path) = &args.plot {
+        crate::plot::PlotFormat::of(path)?;
+    }
     let format = PixelFormat::from_name(&args.format)
         .with_context(|| format!("--format {}: not a known pixel format", args.format))?;
     eprintln!(
@@ -229,6 +238,7 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         late: 0,
         model: None,
         failures: Vec::new(),
+        raw: args.latencies.as_ref().map(|_| Vec::new()),
         shares: args
             .servers
             .iter()
@@ -260,6 +270,7 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         tasks.push(tokio::spawn(async move {
             let outcome = one_session(
                 &url,
+                s,
                 server,
                 token.as_deref(),
                 opening,
@@ -286,7 +297,7 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         t.await.context("a bench session task failed")?;
     }
     let elapsed = start.elapsed().as_secs_f64().max(1e-9);
-    let sh = shared
+    let mut sh = shared
         .lock()
         .map_err(|_| anyhow::anyhow!("bench state poisoned"))?;
     let scheduled = per_session * args.sessions as u64;
@@ -332,6 +343,9 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
     if let Some(path) = &args.plot {
         crate::plot::percentiles(&report, &sh.end_to_end, path)?;
     }
+    if let (Some(path), Some(raw)) = (&args.latencies, sh.raw.as_mut()) {
+        write_latencies(raw, &args.servers, path)?;
+    }
     drop(sh);
     if let Some(path) = &args.json {
         std::fs::write(path, serde_json::to_string_pretty(&report)?)
@@ -365,6 +379,7 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
 #[allow(clippy::too_many_arguments)]
 async fn one_session(
     url: &str,
+    session_index: usize,
     server: usize,
     token: Option<&str>,
     opening: pb::SessionOpening,
@@ -427,6 +442,9 @@ async fn one_session(
                 sh.shares[server].results += 1;
                 sh.end_to_end
                     .saturating_record(e2e.clamp(1, MAX_TRACKED_US));
+                if let Some(raw) = sh.raw.as_mut() {
+                    raw.push((session_index as u32, a.seq, server as u32, e2e));
+                }
                 if e2e > late_us {
                     sh.late += 1;
                 }
@@ -452,6 +470,27 @@ async fn one_session(
     }
     sender.await.context("the frame sender failed")?;
     Ok(())
+}
+
+/// The raw latencies as CSV, in session then sequence order, after a comment line with the caution.
+fn write_latencies(
+    raw: &mut [(u32, u64, u32, u64)],
+    servers: &[String],
+    path: &std::path::Path,
+) -> Result<()> {
+    use std::fmt::Write as _;
+    raw.sort_unstable();
+    let mut out = String::with_capacity(raw.len() * 24 + 256);
+    let _ = writeln!(
+        out,
+        "# framewise bench end-to-end latency per answered frame, microseconds from its scheduled send time. {CAUTION}"
+    );
+    out.push_str("session,seq,server,end_to_end_us\n");
+    for &(session, seq, server, us) in raw.iter() {
+        let server = servers.get(server as usize).map_or("", String::as_str);
+        let _ = writeln!(out, "{session},{seq},{server},{us}");
+    }
+    std::fs::write(path, out).with_context(|| format!("writing {}", path.display()))
 }
 
 fn write_hdr_log(h: &Histogram<u64>, path: &std::path::Path) -> Result<()> {

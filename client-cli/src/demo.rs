@@ -285,12 +285,17 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
         serde_json::to_string_pretty(&report.json(&records.0))?,
     )
     .context("writing summary.json")?;
-    let plots = crate::plot::timeline(&records.0, &records.1, &args.out.join("timeline.svg"))?;
-    let reliability =
-        crate::plot::reliability(&records.0, &report, &args.out.join("reliability.svg"))?;
+    let mut plots = Vec::new();
+    for ext in ["svg", "png"] {
+        let path = args.out.join(format!("timeline.{ext}"));
+        plots.push(crate::plot::timeline(&records.0, &records.1, &path)?);
+        let path = args.out.join(format!("reliability.{ext}"));
+        plots.push(crate::plot::reliability(&records.0, &report, &path)?);
+    }
+    let plots: Vec<String> = plots.iter().map(|p| p.display().to_string()).collect();
     println!("results: {}", results_path.display());
     println!("summary: {}", args.out.join("summary.json").display());
-    println!("plots:   {} {}", plots.display(), reliability.display());
+    println!("plots:   {}", plots.join(" "));
     Ok(())
 }
 

@@ -90,17 +90,17 @@ struct ScoreArgs {
     /// Write the report as JSON here too.
     #[arg(long)]
     json: Option<PathBuf>,
-    /// Write the probability timeline plot (SVG) here.
+    /// Write the probability timeline plot here (.svg or .png).
     #[arg(long)]
     plot: Option<PathBuf>,
-    /// Write the reliability diagram (SVG) here.
+    /// Write the reliability diagram here (.svg or .png).
     #[arg(long)]
     reliability: Option<PathBuf>,
     /// Re-run the temporal filters over a grid of parameters on the stored raw probabilities and report the
     /// trade-off between delay and switches.
     #[arg(long)]
     sweep: bool,
-    /// Write the sweep's trade-off plot (SVG) here.
+    /// Write the sweep's trade-off plot here (.svg or .png).
     #[arg(long, requires = "sweep")]
     sweep_plot: Option<PathBuf>,
     /// Decision thresholds for the sweep: enter, exit, dwell in ms.
@@ -292,6 +292,12 @@ async fn replay_command(args: ReplayArgs) -> Result<()> {
 }
 
 fn score_command(args: ScoreArgs) -> Result<()> {
+    for path in [&args.plot, &args.reliability, &args.sweep_plot]
+        .into_iter()
+        .flatten()
+    {
+        plot::PlotFormat::of(path)?;
+    }
     let (header, records) = score::read_results(&args.results)?;
     let report = score::Report::compute(&records, &header.classes)?;
     println!(

@@ -1,5 +1,7 @@
-//! Plots as SVG, written directly (no font files needed; the viewer renders the text). Every plot carries
-//! the caution and the model's identity in its footer.
+//! Plots, drawn as SVG and written as SVG or PNG by the path's extension. SVG is written directly (the
+//! viewer renders the text); PNG is the same drawing rasterised with `resvg`, its text set in DejaVu Sans
+//! embedded in the binary, so a machine with no fonts installed still gets labelled plots. Every plot
+//! carries the caution and the model's identity in its footer.
 
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
@@ -36,12 +38,19 @@ fn model_field<'a>(model: &'a serde_json::Value, key: &str) -> &'a str {
 }
 
 /// Ends the document with the footer every plot carries (the model's identity and the caution) and writes it.
-fn svg_finish(mut s: String, left: f64, h: f64, model: &str, path: &Path) -> Result<PathBuf> {
+/// The model line is shortened (the SHA-256 to its first 16 hex digits) when it would run past the right edge.
+fn svg_finish(
+    mut s: String,
+    (left, w, h): (f64, f64, f64),
+    model: &str,
+    path: &Path,
+) -> Result<PathBuf> {
+    let model = fit_model_line(model, w - left - 10.0);
     let _ = writeln!(
         s,
         r##"<text x="{left}" y="{}" fill="#555">{}</text>"##,
         h - 30.0,
-        escape(model)
+        escape(&model)
     );
     let _ = writeln!(
         s,
@@ -50,8 +59,93 @@ fn svg_finish(mut s: String, left: f64, h: f64, model: &str, path: &Path) -> Res
         escape(CAUTION_SHORT)
     );
     s.push_str("</svg>\n");
-    std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?;
+    match PlotFormat::of(path)? {
+        PlotFormat::Svg => {
+            std::fs::write(path, s).with_context(|| format!("writing {}", path.display()))?
+        }
+        PlotFormat::Png => {
+            let png = rasterise(&s).with_context(|| format!("drawing {}", path.display()))?;
+            std::fs::write(path, png).with_context(|| format!("writing {}", path.display()))?
+        }
+    }
     Ok(path.to_path_buf())
+}
+
+/// The file formats a plot can be written in, chosen by the path's extension.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum PlotFormat {
+    Svg,
+    Png,
+}
+
+impl PlotFormat {
+    /// The format a path asks for; anything but `.svg` or `.png` (any case) is refused before work is done.
+    pub fn of(path: &Path) -> Result<Self> {
+        let ext = path
+            .extension()
+            .and_then(|e| e.to_str())
+            .map(str::to_ascii_lowercase);
+        match ext.as_deref() {
+            Some("svg") => Ok(Self::Svg),
+            Some("png") => Ok(Self::Png),
+            _ => anyhow::bail!(
+                "plot {}: the file name must end in .svg or .png (the format follows the extension)",
+                path.display()
+            ),
+        }
+    }
+}
+
+/// Pixels per SVG unit in PNG output: twice the drawing's size, sharp on high-density screens and in print.
+const PNG_SCALE: f32 = 2.0;
+
+/// Renders one of our SVG documents to PNG bytes, text in the embedded DejaVu Sans.
+fn rasterise(svg: &str) -> Result<Vec<u8>> {
+    let mut opt = resvg::usvg::Options {
+        font_family: "DejaVu Sans".to_owned(),
+        ..Default::default()
+    };
+    {
+        let fonts = opt.fontdb_mut();
+        fonts.load_font_data(dejavu::sans::regular().to_vec());
+        fonts.load_font_data(dejavu::sans::bold().to_vec());
+        fonts.set_sans_serif_family("DejaVu Sans");
+    }
+    let tree = resvg::usvg::Tree::from_str(svg, &opt).context("parsing the drawing")?;
+    let size = tree
+        .size()
+        .to_int_size()
+        .scale_by(PNG_SCALE)
+        .context("empty drawing")?;
+    let mut pixmap = resvg::tiny_skia::Pixmap::new(size.width(), size.height())
+        .context("drawing too large to rasterise")?;
+    resvg::render(
+        &tree,
+        resvg::tiny_skia::Transform::from_scale(PNG_SCALE, PNG_SCALE),
+        &mut pixmap.as_mut(),
+    );
+    pixmap.encode_png().context("encoding PNG")
+}
+
+/// Average advance of a 12 px DejaVu Sans character, in SVG units (about 0.55 em; generous for digits).
+const CHAR_WIDTH: f64 = 7.0;
+
+/// The model line as given when it fits in `room` units, else with its 64-digit SHA-256 cut to 16 digits.
+fn fit_model_line(model: &str, room: f64) -> String {
+    if model.chars().count() as f64 * CHAR_WIDTH <= room {
+        return model.to_string();
+    }
+    model
+        .split(' ')
+        .map(|word| {
+            if word.len() == 64 && word.bytes().all(|b| b.is_ascii_hexdigit()) {
+                format!("{}…", &word[..16])
+            } else {
+                word.to_string()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join(" ")
 }
 
 fn escape(s: &str) -> String {
@@ -170,8 +264,7 @@ pub fn timeline(header: &Header, records: &[FrameRecord], path: &Path) -> Result
     );
     svg_finish(
         s,
-        left,
-        h,
+        (left, w, h),
         &model_text(
             &header.model.name,
             &header.model.version,
@@ -254,8 +347,7 @@ pub fn percentiles(
     );
     svg_finish(
         s,
-        left,
-        hgt,
+        (left, w, hgt),
         &model_text(
             model_field(&report.model, "name"),
             model_field(&report.model, "version"),
@@ -331,8 +423,7 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
     }
     svg_finish(
         s,
-        left,
-        h,
+        (left, w, h),
         &model_text(
             &header.model.name,
             &header.model.version,
@@ -432,8 +523,7 @@ pub fn reliability(header: &Header, report: &crate::score::Report, path: &Path) 
     }
     svg_finish(
         s,
-        left,
-        h,
+        (left, w, h),
         &model_text(
             &header.model.name,
             &header.model.version,
@@ -442,4 +532,34 @@ pub fn reliability(header: &Header, report: &crate::score::Report, path: &Path) 
         ),
         path,
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_long_model_line_keeps_the_start_of_its_hash() {
+        let sha = "388c05cc641930537baf222c0998b3a7c4f379268dbafca25c90763b71e688c3";
+        let line = model_text("phantom-zones", "1.0.0", sha, "tract");
+        assert_eq!(fit_model_line(&line, 2000.0), line, "fits: unchanged");
+        assert_eq!(
+            fit_model_line(&line, 400.0),
+            "model phantom-zones 1.0.0 sha256 388c05cc64193053… (tract)"
+        );
+    }
+
+    #[test]
+    fn the_extension_chooses_the_format() {
+        assert_eq!(
+            PlotFormat::of(Path::new("a/b.SVG")).ok(),
+            Some(PlotFormat::Svg)
+        );
+        assert_eq!(
+            PlotFormat::of(Path::new("b.png")).ok(),
+            Some(PlotFormat::Png)
+        );
+        assert!(PlotFormat::of(Path::new("b.jpg")).is_err());
+        assert!(PlotFormat::of(Path::new("plot")).is_err());
+    }
 }

@@ -204,7 +204,8 @@ async fn bench_writes_a_valid_report_and_gates() {
         late_ms: 100.0,
         json: Some(dir.join("bench.json")),
         hdr_log: Some(dir.join("bench.hlog")),
-        plot: Some(dir.join("bench.svg")),
+        plot: Some(dir.join("bench.png")),
+        latencies: Some(dir.join("latencies.csv")),
         max_p99_ms: Some(60_000.0),
         min_fps: Some(1.0),
         session: flags(),
@@ -228,17 +229,62 @@ async fn bench_writes_a_valid_report_and_gates() {
     // HdrHistogram interval log: a comment and one tagged interval line.
     let log = std::fs::read_to_string(dir.join("bench.hlog")).expect("log");
     assert!(log.contains("Tag=end_to_end_us,"), "{log}");
+    let plot = image::open(dir.join("bench.png")).expect("the PNG plot decodes");
+    assert!(plot.width() > 0 && plot.height() > 0);
+    // The raw latencies behind the report, against NumPy: numpy.percentile(method="inverted_cdf") (the
+    // nearest-rank definition) over the CSV's column. HdrHistogram (3 significant figures) reports the highest
+    // value equivalent to a sample (up to 0.1% above it) and may round the rank to the neighbouring sample,
+    // so ours lies between the samples one rank below and above, within 0.1%.
+    let csv = dir.join("latencies.csv");
+    let text = std::fs::read_to_string(&csv).expect("latencies");
     assert!(
-        std::fs::read_to_string(dir.join("bench.svg"))
-            .expect("plot")
-            .contains("not a diagnosis")
+        text.starts_with('#') && text.contains("not a diagnosis"),
+        "caution first"
     );
+    assert_eq!(
+        text.lines().filter(|l| !l.starts_with('#')).count() as u64,
+        report.results + 1,
+        "a header and one row per result"
+    );
+    let numpy = std::process::Command::new(framewise_tests::python())
+        .arg("-c")
+        .arg(
+            "import sys, json, numpy as np\n\
+             x = np.sort(np.loadtxt(sys.argv[1], delimiter=',', skiprows=2, usecols=3))\n\
+             out = []\n\
+             for q in (50, 90, 99, 99.9, 100):\n\
+             \x20   v = float(np.percentile(x, q, method='inverted_cdf'))\n\
+             \x20   i = int(np.searchsorted(x, v))\n\
+             \x20   out.append([float(x[max(i - 1, 0)]), v, float(x[min(i + 1, len(x) - 1)])])\n\
+             print(json.dumps(out))",
+        )
+        .arg(&csv)
+        .output()
+        .expect("python runs");
+    assert!(
+        numpy.status.success(),
+        "{}",
+        String::from_utf8_lossy(&numpy.stderr)
+    );
+    let expected: Vec<[f64; 3]> = serde_json::from_slice(&numpy.stdout).expect("NumPy's answer");
+    let e = &report.end_to_end_ms;
+    for (ours_ms, [below, theirs, above]) in [e.p50, e.p90, e.p99, e.p999, e.max]
+        .into_iter()
+        .zip(expected)
+    {
+        let ours = ours_ms * 1000.0;
+        assert!(
+            ours >= below * (1.0 - 1e-3) - 1.0 && ours <= above * (1.0 + 1e-3) + 1.0,
+            "ours {ours} us, NumPy {theirs} (neighbours {below}..{above})"
+        );
+    }
     let strict = framewise_cli::bench::BenchArgs {
         max_p99_ms: Some(0.001),
         seconds: 0.5,
         json: None,
         hdr_log: None,
         plot: None,
+        latencies: None,
         ..args
     };
     let (_, pass) = framewise_cli::bench::run(strict).await.expect("bench runs");
@@ -299,6 +345,61 @@ async fn on_the_demo_sweep_smoothed_calls_change_far_less_often_than_raw_arg_max
         report.decisions.call_changes_per_minute
     );
     assert!(report.raw.accuracy > 0.0 && report.smoothed.accuracy > 0.0);
+
+    // The plots in both formats: the PNG is the SVG's drawing at twice its size, with its text drawn.
+    for ext in ["svg", "png"] {
+        framewise_cli::plot::timeline(&header, &records, &dir.join(format!("timeline.{ext}")))
+            .expect("timeline plot");
+        framewise_cli::plot::reliability(&header, &report, &dir.join(format!("reliability.{ext}")))
+            .expect("reliability plot");
+    }
+    for name in ["timeline", "reliability"] {
+        assert_png_draws_the_svg(
+            &dir.join(format!("{name}.svg")),
+            &dir.join(format!("{name}.png")),
+        );
+    }
+    let refused = framewise_cli::plot::timeline(&header, &records, &dir.join("timeline.jpg"));
+    assert!(
+        format!("{:#}", refused.expect_err("a .jpg plot is refused")).contains(".svg or .png"),
+        "the error names the formats"
+    );
+}
+
+/// Checks a PNG plot against the SVG of the same drawing: decoded by the `image` crate's PNG decoder (the
+/// PNG specification's format), it is twice the SVG's declared width and height, its footer holds the caution
+/// in the caution's red (#aa0000) and the model line in grey (#555555), so text was set with the embedded
+/// font, and the first class's line colour (#1b6ca8) is drawn.
+fn assert_png_draws_the_svg(svg: &std::path::Path, png: &std::path::Path) {
+    let svg = std::fs::read_to_string(svg).expect("svg");
+    let attr = |name: &str| -> u32 {
+        let at = svg.find(&format!(" {name}=\"")).expect("size attribute") + name.len() + 3;
+        let end = svg[at..].find('"').expect("closing quote") + at;
+        svg[at..end].parse::<f64>().expect("number") as u32
+    };
+    let (w, h) = (attr("width"), attr("height"));
+    let img = image::open(png).expect("PNG decodes").to_rgb8();
+    assert_eq!(img.dimensions(), (2 * w, 2 * h), "PNG is the drawing at 2x");
+    let near = |p: &image::Rgb<u8>, c: [u8; 3]| p.0.iter().zip(c).all(|(a, b)| a.abs_diff(b) <= 24);
+    let count = |rows: std::ops::Range<u32>, c: [u8; 3]| {
+        rows.flat_map(|y| (0..img.width()).map(move |x| (x, y)))
+            .filter(|&(x, y)| near(img.get_pixel(x, y), c))
+            .count()
+    };
+    // The footer: the model line's baseline is 30 units above the bottom, the caution's 12.
+    let footer = 2 * h - 2 * 46..2 * h;
+    assert!(
+        count(footer.clone(), [0xaa, 0, 0]) > 500,
+        "caution text drawn in red"
+    );
+    assert!(
+        count(footer, [0x55, 0x55, 0x55]) > 200,
+        "model line drawn in grey"
+    );
+    assert!(
+        count(0..2 * h, [0x1b, 0x6c, 0xa8]) > 200,
+        "first class's colour drawn"
+    );
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
