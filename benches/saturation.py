@@ -7,12 +7,16 @@
 - the plain Python peer (benches/python-peer/peer.py: grpcio + onnxruntime + OpenCV), the baseline,
 
 all on the MobileNetV2-shaped benchmark network with 224x224 RGB frames, and as a share of the bare engine's
-throughput on the same cores (`framewise-benchmarks throughput`). Prints a Markdown table and writes JSON.
+throughput on the same cores (`framewise-benchmarks throughput`, measured just before and just after each
+server's runs). Prints a Markdown table and writes JSON.
 
 Run from the repository root after `cargo build --release --workspace` and `bash tests/run-all` (which makes
 the benchmark network under target/reference-fixtures):
 
     .venv/bin/python benches/saturation.py [--seconds 8] [--json target/bench/saturation.json]
+
+With --pin the server and the bare engine run on one CPU with one worker and the load generator on the other,
+so that the share of bare is measured without the two competing for a core.
 
 Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
 confirmed by a qualified clinician; check local regulations before any clinical use.
@@ -60,6 +64,18 @@ def wait_ready(port, proc, timeout=60.0):
     sys.exit("server did not start")
 
 
+# --pin: the server (and the bare engine) on CPU 1 with one worker, the load generator on CPU 0, so that
+# the two do not share a core; None: everything shares every core.
+PIN = None
+
+
+def pinned(cpu):
+    """A preexec_fn that keeps the child on one CPU (None: no pinning)."""
+    if PIN is None:
+        return None
+    return lambda: os.sched_setaffinity(0, {cpu})
+
+
 def start(kind, sessions):
     port = free_port()
     if kind == "python peer":
@@ -72,7 +88,10 @@ def start(kind, sessions):
                "--model", MODEL, "--no-demo-model", "--engine", engine, "--max-sessions", "64"]
         if engine == "onnxruntime":
             cmd += ["--onnxruntime-library", onnxruntime_library()]
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        if PIN is not None:
+            cmd += ["--workers", "1"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            preexec_fn=pinned(PIN and PIN[1]))
     wait_ready(port, proc)
     return proc, f"http://127.0.0.1:{port}"
 
@@ -81,7 +100,8 @@ def bench(url, sessions, fps, seconds, out):
     cmd = [os.path.join(RELEASE, "framewise"), "bench", "--server", url, "--sessions", str(sessions),
            "--fps", f"{fps:.3f}", "--seconds", str(seconds), "--width", str(SIZE[0]), "--height", str(SIZE[1]),
            "--format", FORMAT, "--json", out]
-    subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=False)
+    subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=False,
+                   preexec_fn=pinned(PIN and PIN[0]))
     with open(out) as f:
         return json.load(f)
 
@@ -91,12 +111,12 @@ def holds(r, total_fps):
             and r["achieved_fps"] >= 0.97 * total_fps)
 
 
-def saturate(kind, sessions, seconds, hi_total, scratch):
+def saturate(kind, sessions, seconds, hi_total, scratch, steps):
     """Bisection on the total rate; returns (best total fps that held, its report)."""
     proc, url = start(kind, sessions)
     try:
         lo, hi, best = 0.0, hi_total, None
-        for step in range(6):
+        for step in range(steps):
             total = hi_total * 0.6 if step == 0 else (lo + hi) / 2
             r = bench(url, sessions, total / sessions, seconds, os.path.join(scratch, "run.json"))
             ok = holds(r, total)
@@ -119,13 +139,13 @@ def saturate(kind, sessions, seconds, hi_total, scratch):
 def bare(kind):
     out = subprocess.run([os.path.join(RELEASE, "framewise-benchmarks"), "throughput", "--engine", kind,
                           "--model", MODEL,
-                          "--workers", str(os.cpu_count() or 2), "--seconds", "6"],
-                         capture_output=True, text=True, check=True)
+                          "--workers", "1" if PIN else str(os.cpu_count() or 2), "--seconds", "6"],
+                         capture_output=True, text=True, check=True, preexec_fn=pinned(PIN and PIN[1]))
     return json.loads(out.stdout.strip().splitlines()[-1])["frames_per_second"]
 
 
 def main():
-    global MODEL, SIZE, FORMAT
+    global MODEL, SIZE, FORMAT, PIN
     ap = argparse.ArgumentParser()
     ap.add_argument("--seconds", type=float, default=8.0)
     ap.add_argument("--sessions", default="1,4,16")
@@ -134,35 +154,50 @@ def main():
     ap.add_argument("--frame", default="224x224", help="frame size WxH")
     ap.add_argument("--format", default="rgb8", help="pixel format of the frames")
     ap.add_argument("--servers", default="framewise onnxruntime,python peer,framewise tract")
+    ap.add_argument("--steps", type=int, default=6, help="bisection steps per session count")
+    ap.add_argument("--pin", action="store_true",
+                    help="server and bare engine on CPU 1 with one worker, load generator on CPU 0")
     args = ap.parse_args()
+    if args.pin:
+        if len(os.sched_getaffinity(0)) < 2:
+            sys.exit("--pin needs two CPUs")
+        PIN = sorted(os.sched_getaffinity(0))[:2]
     MODEL = os.path.abspath(args.model)
     SIZE = tuple(int(v) for v in args.frame.split("x"))
     FORMAT = args.format
     scratch = os.path.dirname(args.json)
     os.makedirs(scratch, exist_ok=True)
-    bare_fps = {"onnxruntime": bare("onnxruntime"), "tract": bare("tract")}
-    print(f"bare throughput on {os.cpu_count()} cores: {bare_fps}", file=sys.stderr)
+    where = f"CPU {PIN[1]} (load generator on CPU {PIN[0]})" if PIN else f"{os.cpu_count()} cores"
     rows = []
     engines = {"framewise onnxruntime": "onnxruntime", "python peer": "onnxruntime", "framewise tract": "tract"}
     for kind in args.servers.split(","):
         engine = engines[kind]
         for sessions in [int(s) for s in args.sessions.split(",")]:
-            found = saturate(kind, sessions, args.seconds, bare_fps[engine] * 1.1, scratch)
+            # The bare engine just before and just after, averaged: a shared machine's speed drifts over
+            # minutes, so the share is taken against the bare rate of the same minutes.
+            before = bare(engine)
+            found = saturate(kind, sessions, args.seconds, before * 1.1, scratch, args.steps)
+            after = bare(engine)
+            bare_fps = (before + after) / 2
+            print(f"  bare {engine} on {where}: {before:.1f} before, {after:.1f} after", file=sys.stderr)
             total, r = found if found else (0.0, None)
             rows.append({"server": kind, "sessions": sessions, "max_total_fps": total,
-                         "bare_engine_fps": bare_fps[engine], "share_of_bare": total / bare_fps[engine],
+                         "bare_engine_fps": bare_fps, "bare_before_fps": before, "bare_after_fps": after,
+                         "share_of_bare": total / bare_fps,
                          "p50_ms": r["end_to_end_ms"]["p50"] if r else None,
                          "p99_ms": r["end_to_end_ms"]["p99"] if r else None})
-    print("| server | sessions | highest total fps with p99 < 100 ms | p50 ms | p99 ms | bare engine fps | share of bare |")
+    print("| server | sessions | highest total fps with p99 < 100 ms | p50 ms | p99 ms |"
+          " bare engine fps (before / after) | share of bare |")
     print("|---|---|---|---|---|---|---|")
     for row in rows:
         p50 = f"{row['p50_ms']:.1f}" if row["p50_ms"] is not None else "-"
         p99 = f"{row['p99_ms']:.1f}" if row["p99_ms"] is not None else "-"
         print(f"| {row['server']} | {row['sessions']} | {row['max_total_fps']:.1f} | {p50} | {p99} |"
-              f" {row['bare_engine_fps']:.1f} | {row['share_of_bare']:.2f} |")
+              f" {row['bare_engine_fps']:.1f} ({row['bare_before_fps']:.1f} / {row['bare_after_fps']:.1f}) |"
+              f" {row['share_of_bare']:.2f} |")
     with open(args.json, "w") as f:
         json.dump({"caution": "Decision support only, not a diagnosis.", "p99_limit_ms": P99_LIMIT_MS,
-                   "rows": rows}, f, indent=2)
+                   "pinned": PIN, "rows": rows}, f, indent=2)
 
 
 if __name__ == "__main__":

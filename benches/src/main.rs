@@ -21,6 +21,7 @@ use clap::{Parser, Subcommand};
 use framewise_engine::frame::encode_from_rgb;
 use framewise_engine::manifest::InputSpec;
 use framewise_engine::pipeline::{self, FrameSpec, Scratch};
+use framewise_engine::preprocess::Preprocessor;
 use framewise_engine::{
     CAUTION, EngineKind, EngineOptions, FrameRef, Model, ModelPackage, PixelFormat,
 };
@@ -53,6 +54,16 @@ enum Bench {
         /// Frames timed per configuration.
         #[arg(long, default_value_t = 60)]
         frames: usize,
+        /// Frame sizes, WIDTHxHEIGHT, comma-separated.
+        #[arg(
+            long,
+            value_delimiter = ',',
+            default_value = "640x480,1280x720,1920x1080"
+        )]
+        sizes: Vec<String>,
+        /// Pixel formats (raw ones), comma-separated; all when not given.
+        #[arg(long, value_delimiter = ',')]
+        formats: Vec<String>,
     },
     /// Bare throughput: `workers` threads running single frames on one shared model, as the server's workers do.
     Throughput {
@@ -68,6 +79,10 @@ enum Bench {
         /// Model package (default: the MobileNetV2-shaped network).
         #[arg(long)]
         model: Option<PathBuf>,
+        /// Idle this long after each inference (ms): how fast an inference is when the core has rested
+        /// between frames, as it does in a server fed at a frame rate.
+        #[arg(long, default_value_t = 0.0)]
+        pause_ms: f64,
     },
     /// Service overhead: end-to-end through a loopback server minus the reported inference time.
     Overhead {
@@ -89,13 +104,18 @@ fn run() -> Result<()> {
     eprintln!("{CAUTION}");
     let figures = match args.command {
         Bench::Inference { frames } => inference(frames)?,
-        Bench::Preprocess { frames } => preprocess(frames)?,
+        Bench::Preprocess {
+            frames,
+            sizes,
+            formats,
+        } => preprocess(frames, &sizes, &formats)?,
         Bench::Throughput {
             engine: kind,
             workers,
             seconds,
             model,
-        } => throughput(kind, workers, seconds, model)?,
+            pause_ms,
+        } => throughput(kind, workers, seconds, model, pause_ms)?,
         Bench::Overhead { frames } => {
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
@@ -252,6 +272,7 @@ fn throughput(
     workers: usize,
     seconds: f64,
     model: Option<PathBuf>,
+    pause_ms: f64,
 ) -> Result<serde_json::Value> {
     let bench = match model {
         Some(dir) => ModelPackage::read(&dir)?,
@@ -263,30 +284,36 @@ fn throughput(
         .collect();
     let stop = Instant::now() + Duration::from_secs_f64(seconds);
     let start = Instant::now();
-    let frames: usize = std::thread::scope(|scope| {
+    let pause = Duration::from_secs_f64(pause_ms.max(0.0) / 1000.0);
+    let times: Vec<f64> = std::thread::scope(|scope| {
         let handles: Vec<_> = (0..workers.max(1))
             .map(|_| {
                 scope.spawn(|| {
-                    let mut n = 0usize;
+                    let mut times = Vec::new();
                     while Instant::now() < stop {
+                        let t = Instant::now();
                         if model.infer(&input).is_ok() {
-                            n += 1;
+                            times.push(t.elapsed().as_secs_f64() * 1000.0);
+                        }
+                        if !pause.is_zero() {
+                            std::thread::sleep(pause);
                         }
                     }
-                    n
+                    times
                 })
             })
             .collect();
-        handles.into_iter().map(|h| h.join().unwrap_or(0)).sum()
+        handles
+            .into_iter()
+            .flat_map(|h| h.join().unwrap_or_default())
+            .collect()
     });
-    let fps = frames as f64 / start.elapsed().as_secs_f64();
-    println!(
-        "{}",
-        json!({"engine": kind.to_string(), "workers": workers, "frames_per_second": fps})
-    );
-    Ok(
-        json!({"throughput": {"engine": kind.to_string(), "workers": workers, "frames_per_second": fps}}),
-    )
+    let fps = times.len() as f64 / start.elapsed().as_secs_f64();
+    let (median, p99) = summary(times);
+    let figures = json!({"engine": kind.to_string(), "workers": workers, "pause_ms": pause_ms,
+        "frames_per_second": fps, "inference_median_ms": median, "inference_p99_ms": p99});
+    println!("{figures}");
+    Ok(json!({ "throughput": figures }))
 }
 
 /// Synthetic frames (invented phantom views) in a format and size.
@@ -387,18 +414,36 @@ fn plain_prepare(
     Ok(())
 }
 
-fn preprocess(frames: usize) -> Result<serde_json::Value> {
+fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<serde_json::Value> {
     let (bench, _) = bench_package()?;
     let model = Model::load(&bench, None)?;
     let spec = &model.manifest().input;
+    let sizes: Vec<(u32, u32)> = sizes
+        .iter()
+        .map(|s| {
+            s.split_once('x')
+                .and_then(|(w, h)| Some((w.trim().parse().ok()?, h.trim().parse().ok()?)))
+                .with_context(|| format!("--sizes {s}: expected WIDTHxHEIGHT"))
+        })
+        .collect::<Result<_>>()?;
+    let formats: Vec<PixelFormat> = if formats.is_empty() {
+        PixelFormat::ALL
+            .into_iter()
+            .filter(|f| !f.is_encoded())
+            .collect()
+    } else {
+        formats
+            .iter()
+            .map(|f| PixelFormat::from_name(f).with_context(|| format!("--formats {f}: unknown")))
+            .collect::<Result<_>>()?
+    };
     let mut rows = Vec::new();
     println!(
-        "| format | frame | framewise (SIMD) median ms | p99 ms | plain `image` path median ms | plain / SIMD |"
+        "| format | frame | framewise (SIMD) median ms | p99 ms | of which decode / resize and normalise / quality, median ms | plain `image` path median ms | plain / SIMD |"
     );
-    println!("|---|---|---|---|---|---|");
-    let formats = PixelFormat::ALL.into_iter().filter(|f| !f.is_encoded());
-    for (w, h) in [(640u32, 480u32), (1280, 720), (1920, 1080)] {
-        for format in formats.clone() {
+    println!("|---|---|---|---|---|---|---|");
+    for &(w, h) in &sizes {
+        for &format in &formats {
             let data = frames_of(format, w, h, 4)?;
             let mut scratch = Scratch::default();
             let frame_spec = FrameSpec::default();
@@ -417,7 +462,43 @@ fn preprocess(frames: usize) -> Result<serde_json::Value> {
                     simd.push(t.elapsed().as_secs_f64() * 1000.0);
                 }
             }
-            let mut tensor = Vec::new();
+            // The same work in its three parts, timed one by one.
+            let (mut decode, mut rgb, mut pre, mut tensor) = Default::default();
+            let mut parts: [Vec<f64>; 3] = Default::default();
+            for (i, d) in data.iter().cycle().take(frames + 5).enumerate() {
+                let frame = FrameRef {
+                    format,
+                    width: w,
+                    height: h,
+                    stride: 0,
+                    data: d,
+                };
+                let t0 = Instant::now();
+                framewise_engine::frame::to_rgb(
+                    &frame,
+                    None,
+                    frame_spec.yuv,
+                    &frame_spec.limits,
+                    &mut decode,
+                    &mut rgb,
+                )?;
+                let t1 = Instant::now();
+                let prepared = Preprocessor::prepare(&mut pre, spec, &rgb, &mut tensor);
+                let t2 = Instant::now();
+                let (pw, ph) = prepared.size;
+                std::hint::black_box(framewise_engine::quality::measure(
+                    prepared.luma,
+                    pw as usize,
+                    ph as usize,
+                ));
+                let t3 = Instant::now();
+                if i >= 5 {
+                    for (part, (a, b)) in parts.iter_mut().zip([(t0, t1), (t1, t2), (t2, t3)]) {
+                        part.push((b - a).as_secs_f64() * 1000.0);
+                    }
+                }
+            }
+            let [d_med, r_med, q_med] = parts.map(|p| summary(p).0);
             let mut plain = Vec::with_capacity(frames);
             for (i, d) in data.iter().cycle().take(frames + 2).enumerate() {
                 let t = Instant::now();
@@ -429,12 +510,13 @@ fn preprocess(frames: usize) -> Result<serde_json::Value> {
             let (s_med, s_p99) = summary(simd);
             let (p_med, p_p99) = summary(plain);
             println!(
-                "| {format} | {w}x{h} | {s_med:.3} | {s_p99:.3} | {p_med:.3} | {:.1} |",
+                "| {format} | {w}x{h} | {s_med:.3} | {s_p99:.3} | {d_med:.3} / {r_med:.3} / {q_med:.3} | {p_med:.3} | {:.1} |",
                 p_med / s_med
             );
             rows.push(
                 json!({"format": format.to_string(), "width": w, "height": h,
-                "simd_median_ms": s_med, "simd_p99_ms": s_p99,
+                "simd_median_ms": s_med, "simd_p99_ms": s_p99, "decode_median_ms": d_med,
+                "resize_normalise_median_ms": r_med, "quality_median_ms": q_med,
                 "plain_median_ms": p_med, "plain_p99_ms": p_p99}),
             );
         }

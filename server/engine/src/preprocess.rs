@@ -270,18 +270,28 @@ fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut V
     let fill = spec.letterbox_fill as usize;
     match spec.layout {
         Layout::Nchw => {
-            for c in 0..3 {
-                let plane = &mut tensor[c * tw * th..(c + 1) * tw * th];
-                if !covered {
-                    plane.fill(tables[c][fill]);
+            let (p0, rest) = tensor.split_at_mut(tw * th);
+            let (p1, p2) = rest.split_at_mut(tw * th);
+            if !covered {
+                for (plane, table) in [&mut *p0, &mut *p1, &mut *p2].into_iter().zip(&tables) {
+                    plane.fill(table[fill]);
                 }
-                let table = &tables[c];
-                for y in 0..ph {
-                    let src = &picture[y * pw * 3..(y + 1) * pw * 3];
-                    let dst = &mut plane[(py + y) * tw + px..(py + y) * tw + px + pw];
-                    for (d, p) in dst.iter_mut().zip(src.chunks_exact(3)) {
-                        *d = table[p[source[c]] as usize];
-                    }
+            }
+            // One pass over the picture, each pixel read once and written to the three planes.
+            let [t0, t1, t2] = &tables;
+            let [s0, s1, s2] = source;
+            for y in 0..ph {
+                let src = &picture[y * pw * 3..(y + 1) * pw * 3];
+                let at = (py + y) * tw + px;
+                let (d0, d1, d2) = (
+                    &mut p0[at..at + pw],
+                    &mut p1[at..at + pw],
+                    &mut p2[at..at + pw],
+                );
+                for (((p, a), b), c) in src.chunks_exact(3).zip(d0).zip(d1).zip(d2) {
+                    *a = t0[p[s0] as usize];
+                    *b = t1[p[s1] as usize];
+                    *c = t2[p[s2] as usize];
                 }
             }
         }
