@@ -127,6 +127,30 @@ fn rasterise(svg: &str) -> Result<Vec<u8>> {
     pixmap.encode_png().context("encoding PNG")
 }
 
+/// An axis from 0 that holds `max`: a step of 1, 2 or 5 times a power of ten giving four to eight intervals,
+/// and the axis end (a whole number of steps at or above `max`).
+fn nice_axis(max: f64) -> (f64, f64) {
+    let max = if max.is_finite() && max > 0.0 {
+        max
+    } else {
+        1.0
+    };
+    let rough = max / 5.0;
+    let power = 10f64.powf(rough.log10().floor());
+    let step = [1.0, 2.0, 5.0, 10.0]
+        .into_iter()
+        .map(|m| m * power)
+        .find(|&step| max / step <= 8.0)
+        .unwrap_or(10.0 * power);
+    (step, (max / step).ceil().max(1.0) * step)
+}
+
+/// A tick value with as many decimals as its axis step needs (0.2 steps: one decimal; 200: none).
+fn tick_text(v: f64, step: f64) -> String {
+    let decimals = (-step.log10().floor()).max(0.0) as usize;
+    format!("{v:.decimals$}")
+}
+
 /// Average advance of a 12 px DejaVu Sans character, in SVG units (about 0.55 em; generous for digits).
 const CHAR_WIDTH: f64 = 7.0;
 
@@ -360,8 +384,8 @@ pub fn percentiles(
 
 /// The sweep's trade-off: median delay to a correct call against switches per minute, one point per filter.
 pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) -> Result<PathBuf> {
-    let (w, h) = (900.0, 520.0);
-    let (left, right, top, bottom) = (80.0, 40.0, 40.0, 90.0);
+    let (w, h) = (900.0, 540.0);
+    let (left, right, top, bottom) = (80.0, 40.0, 60.0, 90.0);
     let xs: Vec<f64> = points
         .iter()
         .map(|p| p.decisions.median_time_to_correct_ms.unwrap_or(0.0))
@@ -370,25 +394,44 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
         .iter()
         .map(|p| p.decisions.switches_per_minute)
         .collect();
-    let xmax = xs.iter().copied().fold(100.0, f64::max) * 1.1;
-    let ymax = ys.iter().copied().fold(1.0, f64::max) * 1.1;
+    let (xstep, xmax) = nice_axis(xs.iter().copied().fold(100.0, f64::max));
+    let (ystep, ymax) = nice_axis(ys.iter().copied().fold(1.0, f64::max));
     let x = |v: f64| left + v / xmax * (w - left - right);
     let y = |v: f64| top + (1.0 - v / ymax) * (h - top - bottom);
     let mut s = svg_open(w, h);
     let _ = writeln!(
         s,
-        r#"<text x="{left}" y="22" font-size="15">Temporal filter sweep: delay against switches ({})</text>"#,
+        r#"<text x="{left}" y="22" font-size="15">Temporal filter sweep: delay against call switches</text>"#
+    );
+    let _ = writeln!(
+        s,
+        r##"<text x="{left}" y="40" fill="#555">{}</text>"##,
         escape(&header.source)
     );
-    for k in 0..=4 {
-        let (vx, vy) = (xmax * k as f64 / 4.0, ymax * k as f64 / 4.0);
+    let ticks = |max: f64, step: f64| {
+        (0..)
+            .map(move |k| k as f64 * step)
+            .take_while(move |v| *v <= max + step * 1e-9)
+    };
+    for vx in ticks(xmax, xstep) {
         let _ = writeln!(
             s,
-            r##"<text x="{0}" y="{1}" text-anchor="middle">{vx:.0}</text><text x="{2}" y="{3}" text-anchor="end">{vy:.1}</text>"##,
+            r##"<line x1="{0:.1}" x2="{0:.1}" y1="{top}" y2="{1}" stroke="#eee"/><text x="{0:.1}" y="{2}" text-anchor="middle">{3}</text>"##,
             x(vx),
+            h - bottom,
             h - bottom + 16.0,
+            tick_text(vx, xstep),
+        );
+    }
+    for vy in ticks(ymax, ystep) {
+        let _ = writeln!(
+            s,
+            r##"<line x1="{left}" x2="{0}" y1="{1:.1}" y2="{1:.1}" stroke="#eee"/><text x="{2}" y="{3:.1}" text-anchor="end">{4}</text>"##,
+            w - right,
+            y(vy),
             left - 6.0,
-            y(vy) + 4.0
+            y(vy) + 4.0,
+            tick_text(vy, ystep)
         );
     }
     let _ = writeln!(
@@ -403,22 +446,60 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
         (top + h - bottom) / 2.0,
         (top + h - bottom) / 2.0
     );
+    let colour = |filter: &str| match filter.split(':').next().unwrap_or("") {
+        "exp" => PALETTE[0],
+        "window" => PALETTE[1],
+        "forward" => PALETTE[2],
+        _ => PALETTE[3],
+    };
     for (i, p) in points.iter().enumerate() {
-        let family = p.filter.split(':').next().unwrap_or("");
-        let c = match family {
-            "exp" => PALETTE[0],
-            "window" => PALETTE[1],
-            "forward" => PALETTE[2],
-            _ => PALETTE[3],
-        };
         let _ = writeln!(
             s,
-            r#"<circle cx="{:.1}" cy="{:.1}" r="5" fill="{c}"/><text x="{:.1}" y="{:.1}" font-size="10">{}</text>"#,
+            r#"<circle cx="{:.1}" cy="{:.1}" r="5" fill="{}" fill-opacity="0.85"/>"#,
             x(xs[i]),
             y(ys[i]),
-            x(xs[i]) + 7.0,
-            y(ys[i]) - 4.0,
-            escape(&p.filter)
+            colour(&p.filter)
+        );
+    }
+    // One label per spot: filters whose points fall within a few units of each other share a label, and a
+    // label that would overlap one already placed moves down a line.
+    let mut groups: Vec<((f64, f64), Vec<&str>)> = Vec::new();
+    for (i, p) in points.iter().enumerate() {
+        let at = (x(xs[i]), y(ys[i]));
+        match groups
+            .iter_mut()
+            .find(|(g, _)| (g.0 - at.0).abs() < 4.0 && (g.1 - at.1).abs() < 4.0)
+        {
+            Some((_, names)) => names.push(&p.filter),
+            None => groups.push((at, vec![&p.filter])),
+        }
+    }
+    let mut placed: Vec<(f64, f64, f64)> = Vec::new(); // (x, baseline y, width)
+    for ((px, py), names) in &groups {
+        let text = if names.len() <= 3 {
+            names.join(", ")
+        } else {
+            format!("{}, {} and {} more", names[0], names[1], names.len() - 2)
+        };
+        let width = text.chars().count() as f64 * 6.0;
+        // To the right of the marker, or to its left where the right edge would cut it.
+        let lx = if px + 7.0 + width > w - 4.0 {
+            px - 7.0 - width
+        } else {
+            px + 7.0
+        };
+        let mut ly = py - 4.0;
+        while placed
+            .iter()
+            .any(|&(x0, y0, w0)| (ly - y0).abs() < 11.0 && lx < x0 + w0 && x0 < lx + width)
+        {
+            ly += 11.0;
+        }
+        placed.push((lx, ly, width));
+        let _ = writeln!(
+            s,
+            r#"<text x="{lx:.1}" y="{ly:.1}" font-size="10">{}</text>"#,
+            escape(&text)
         );
     }
     svg_finish(
@@ -547,6 +628,26 @@ mod tests {
             fit_model_line(&line, 400.0),
             "model phantom-zones 1.0.0 sha256 388c05cc64193053… (tract)"
         );
+    }
+
+    #[test]
+    fn axes_end_on_a_round_step() {
+        for (max, step, end) in [
+            (843.0, 200.0, 1000.0),
+            (83.2, 20.0, 100.0),
+            (1.0, 0.2, 1.0),
+            (0.0, 0.2, 1.0),
+            (45.4, 10.0, 50.0),
+            (7.0, 1.0, 7.0),
+        ] {
+            let (s, e) = nice_axis(max);
+            assert!(
+                (s - step).abs() < 1e-9 && (e - end).abs() < 1e-9,
+                "{max}: {s} {e}"
+            );
+        }
+        assert_eq!(tick_text(0.6000000000000001, 0.2), "0.6");
+        assert_eq!(tick_text(400.0, 200.0), "400");
     }
 
     #[test]
