@@ -474,16 +474,27 @@ fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<ser
                     data: d,
                 };
                 let t0 = Instant::now();
-                framewise_engine::frame::to_rgb(
+                // As the pipeline does: a whole packed RGB8 frame is read in place, others converted.
+                let view = match framewise_engine::frame::packed_rgb_view(
                     &frame,
                     None,
-                    frame_spec.yuv,
                     &frame_spec.limits,
-                    &mut decode,
-                    &mut rgb,
-                )?;
+                )? {
+                    Some(view) => view,
+                    None => {
+                        framewise_engine::frame::to_rgb(
+                            &frame,
+                            None,
+                            frame_spec.yuv,
+                            &frame_spec.limits,
+                            &mut decode,
+                            &mut rgb,
+                        )?;
+                        rgb.view()
+                    }
+                };
                 let t1 = Instant::now();
-                let prepared = Preprocessor::prepare(&mut pre, spec, &rgb, &mut tensor);
+                let prepared = Preprocessor::prepare_view(&mut pre, spec, view, &mut tensor);
                 let t2 = Instant::now();
                 let (pw, ph) = prepared.size;
                 std::hint::black_box(framewise_engine::quality::measure(

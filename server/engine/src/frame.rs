@@ -320,7 +320,27 @@ pub struct RgbImage {
     pub data: Vec<u8>,
 }
 
+/// Packed RGB8 pixels, borrowed: an [`RgbImage`]'s, or a received RGB8 frame's own bytes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct RgbView<'a> {
+    /// Width in pixels.
+    pub width: u32,
+    /// Height in pixels.
+    pub height: u32,
+    /// `width * height * 3` bytes, red first.
+    pub data: &'a [u8],
+}
+
 impl RgbImage {
+    /// The pixels, borrowed.
+    pub fn view(&self) -> RgbView<'_> {
+        RgbView {
+            width: self.width,
+            height: self.height,
+            data: &self.data,
+        }
+    }
+
     fn reset(&mut self, width: u32, height: u32) {
         self.width = width;
         self.height = height;
@@ -566,6 +586,34 @@ pub fn to_rgb(
         &mut scratch.planes,
         out,
     )
+}
+
+/// A tightly packed RGB8 frame taken whole is already what [`to_rgb`] would make: its own bytes, checked as
+/// `to_rgb` checks them, with no copy. `Ok(None)` for every other frame (another format, rows padded to a
+/// stride, a region of interest smaller than the frame), which goes through `to_rgb`.
+pub fn packed_rgb_view<'a>(
+    frame: &FrameRef<'a>,
+    region: Option<Region>,
+    limits: &FrameLimits,
+) -> Result<Option<RgbView<'a>>, FrameError> {
+    if frame.format != PixelFormat::Rgb8 {
+        return Ok(None);
+    }
+    let checked = frame.check(limits)?;
+    let region = checked_region(region, checked.width, checked.height)?;
+    let row = checked.width as usize * 3;
+    let len = row * checked.height as usize;
+    if region != Region::whole(checked.width, checked.height)
+        || checked.stride != row
+        || checked.data.len() < len
+    {
+        return Ok(None);
+    }
+    Ok(Some(RgbView {
+        width: checked.width,
+        height: checked.height,
+        data: &checked.data[..len],
+    }))
 }
 
 fn checked_region(region: Option<Region>, width: u32, height: u32) -> Result<Region, FrameError> {
@@ -974,6 +1022,67 @@ struct YuvPlanes {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_whole_packed_rgb_frame_is_read_in_place_and_equals_its_conversion() {
+        let (w, h) = (5u32, 3u32);
+        let data: Vec<u8> = (0..w * h * 3).map(|i| (i * 7 % 251) as u8).collect();
+        let frame = |format, stride, data| FrameRef {
+            format,
+            width: w,
+            height: h,
+            stride,
+            data,
+        };
+        let limits = &DEFAULT_FRAME_LIMITS;
+        let tight = frame(PixelFormat::Rgb8, 0, &data[..]);
+        let view = packed_rgb_view(&tight, None, limits)
+            .expect("valid")
+            .expect("read in place");
+        let converted = convert(tight, None, YuvSpec::default()).expect("converts");
+        assert_eq!(view, converted.view(), "the same pixels as a conversion");
+        assert_eq!(view.data.as_ptr(), data.as_ptr(), "no copy");
+        // The whole frame named as a region is still the whole frame.
+        assert!(matches!(
+            packed_rgb_view(&tight, Some(Region::whole(w, h)), limits),
+            Ok(Some(_))
+        ));
+        // Anything else is converted: a smaller region, padded rows, another format.
+        let small = Region {
+            x: 1,
+            y: 0,
+            width: 2,
+            height: 2,
+        };
+        assert!(matches!(
+            packed_rgb_view(&tight, Some(small), limits),
+            Ok(None)
+        ));
+        let padded: Vec<u8> = data
+            .chunks(15)
+            .flat_map(|row| row.iter().copied().chain([0u8; 3]))
+            .collect();
+        let strided = frame(PixelFormat::Rgb8, 18, &padded[..]);
+        assert!(matches!(packed_rgb_view(&strided, None, limits), Ok(None)));
+        let bgr = frame(PixelFormat::Bgr8, 0, &data[..]);
+        assert!(matches!(packed_rgb_view(&bgr, None, limits), Ok(None)));
+        // Bad frames are refused as the conversion refuses them.
+        let short = frame(PixelFormat::Rgb8, 0, &data[..data.len() - 1]);
+        assert_eq!(
+            packed_rgb_view(&short, None, limits).err(),
+            convert(short, None, YuvSpec::default()).err()
+        );
+        let outside = Region {
+            x: 4,
+            y: 0,
+            width: 2,
+            height: 1,
+        };
+        assert_eq!(
+            packed_rgb_view(&tight, Some(outside), limits).err(),
+            convert(tight, Some(outside), YuvSpec::default()).err()
+        );
+    }
 
     fn convert(
         frame: FrameRef<'_>,

@@ -101,17 +101,24 @@ pub fn prepare(
     scratch: &mut Scratch,
 ) -> Result<(QualityMeasures, u64), FrameError> {
     let start = Instant::now();
-    frame::to_rgb(
-        frame,
-        spec.region,
-        spec.yuv,
-        &spec.limits,
-        &mut scratch.decode,
-        &mut scratch.rgb,
-    )?;
+    // A packed RGB8 frame taken whole is read where it lies; every other frame is converted first.
+    let rgb = match frame::packed_rgb_view(frame, spec.region, &spec.limits)? {
+        Some(view) => view,
+        None => {
+            frame::to_rgb(
+                frame,
+                spec.region,
+                spec.yuv,
+                &spec.limits,
+                &mut scratch.decode,
+                &mut scratch.rgb,
+            )?;
+            scratch.rgb.view()
+        }
+    };
     let prepared = scratch
         .pre
-        .prepare(&model.manifest().input, &scratch.rgb, &mut scratch.tensor);
+        .prepare_view(&model.manifest().input, rgb, &mut scratch.tensor);
     let (w, h) = prepared.size;
     let measures = quality::measure(prepared.luma, w as usize, h as usize);
     Ok((measures, micros_since(start)))

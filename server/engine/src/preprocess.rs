@@ -9,7 +9,7 @@
 
 use fast_image_resize as fir;
 
-use crate::frame::RgbImage;
+use crate::frame::{RgbImage, RgbView};
 use crate::manifest::{ColourOrder, InputSpec, Interpolation, Layout, ResizeRule};
 
 /// Where the resized picture sits inside the model's input (the whole input except for letterbox).
@@ -129,8 +129,18 @@ impl Preprocessor {
         rgb: &RgbImage,
         tensor: &mut Vec<f32>,
     ) -> Prepared<'a> {
+        self.prepare_view(spec, rgb.view(), tensor)
+    }
+
+    /// As [`Preprocessor::prepare`], from borrowed pixels.
+    pub fn prepare_view<'a>(
+        &'a mut self,
+        spec: &InputSpec,
+        rgb: RgbView<'_>,
+        tensor: &mut Vec<f32>,
+    ) -> Prepared<'a> {
         let plan = plan_resize(spec, rgb.width, rgb.height);
-        self.resize(spec, rgb, &plan);
+        self.resize(spec, &rgb, &plan);
         normalise(spec, &plan.place, &self.resized, tensor);
         luma_of(&self.resized, &mut self.luma);
         Prepared {
@@ -140,7 +150,7 @@ impl Preprocessor {
         }
     }
 
-    fn resize(&mut self, spec: &InputSpec, rgb: &RgbImage, plan: &ResizePlan) {
+    fn resize(&mut self, spec: &InputSpec, rgb: &RgbView<'_>, plan: &ResizePlan) {
         let (pw, ph) = (plan.place.width, plan.place.height);
         // Every path below writes every value, so a buffer of the right length is not cleared first.
         self.resized.resize(pw as usize * ph as usize * 3, 0);
@@ -197,8 +207,7 @@ impl Preprocessor {
             f64::from(cw),
             f64::from(ch),
         );
-        let src =
-            fir::images::ImageRef::new(rgb.width, rgb.height, &rgb.data, fir::PixelType::U8x3);
+        let src = fir::images::ImageRef::new(rgb.width, rgb.height, rgb.data, fir::PixelType::U8x3);
         let dst =
             fir::images::Image::from_slice_u8(pw, ph, &mut self.resized, fir::PixelType::U8x3);
         match (src, dst) {
