@@ -445,19 +445,22 @@ fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<ser
     for &(w, h) in &sizes {
         for &format in &formats {
             let data = frames_of(format, w, h, 4)?;
-            let mut scratch = Scratch::default();
-            let frame_spec = FrameSpec::default();
-            let mut simd = Vec::with_capacity(frames);
-            for (i, d) in data.iter().cycle().take(frames + 5).enumerate() {
-                let frame = FrameRef {
+            let refs: Vec<FrameRef<'_>> = data
+                .iter()
+                .map(|d| FrameRef {
                     format,
                     width: w,
                     height: h,
                     stride: 0,
                     data: d,
-                };
+                })
+                .collect();
+            let mut scratch = Scratch::default();
+            let frame_spec = FrameSpec::default();
+            let mut simd = Vec::with_capacity(frames);
+            for (i, frame) in refs.iter().cycle().take(frames + 5).enumerate() {
                 let t = Instant::now();
-                pipeline::prepare(&model, &frame, &frame_spec, &mut scratch)?;
+                pipeline::prepare(&model, frame, &frame_spec, &mut scratch)?;
                 if i >= 5 {
                     simd.push(t.elapsed().as_secs_f64() * 1000.0);
                 }
@@ -465,34 +468,16 @@ fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<ser
             // The same work in its three parts, timed one by one.
             let (mut decode, mut rgb, mut pre, mut tensor) = Default::default();
             let mut parts: [Vec<f64>; 3] = Default::default();
-            for (i, d) in data.iter().cycle().take(frames + 5).enumerate() {
-                let frame = FrameRef {
-                    format,
-                    width: w,
-                    height: h,
-                    stride: 0,
-                    data: d,
-                };
+            for (i, frame) in refs.iter().cycle().take(frames + 5).enumerate() {
                 let t0 = Instant::now();
-                // As the pipeline does: a whole packed RGB8 frame is read in place, others converted.
-                let view = match framewise_engine::frame::packed_rgb_view(
-                    &frame,
+                let view = framewise_engine::frame::read_rgb(
+                    frame,
                     None,
+                    frame_spec.yuv,
                     &frame_spec.limits,
-                )? {
-                    Some(view) => view,
-                    None => {
-                        framewise_engine::frame::to_rgb(
-                            &frame,
-                            None,
-                            frame_spec.yuv,
-                            &frame_spec.limits,
-                            &mut decode,
-                            &mut rgb,
-                        )?;
-                        rgb.view()
-                    }
-                };
+                    &mut decode,
+                    &mut rgb,
+                )?;
                 let t1 = Instant::now();
                 let prepared = Preprocessor::prepare_view(&mut pre, spec, view, &mut tensor);
                 let t2 = Instant::now();

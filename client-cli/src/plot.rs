@@ -5,6 +5,7 @@
 
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
+use std::sync::{Arc, OnceLock};
 
 use anyhow::{Context, Result};
 use framewise_engine::caution::CAUTION_SHORT;
@@ -101,16 +102,21 @@ const PNG_SCALE: f32 = 2.0;
 
 /// Renders one of our SVG documents to PNG bytes, text in the embedded DejaVu Sans.
 fn rasterise(svg: &str) -> Result<Vec<u8>> {
-    let mut opt = resvg::usvg::Options {
+    static FONTS: OnceLock<Arc<resvg::usvg::fontdb::Database>> = OnceLock::new();
+    let fontdb = FONTS
+        .get_or_init(|| {
+            let mut fonts = resvg::usvg::fontdb::Database::new();
+            fonts.load_font_data(dejavu::sans::regular().to_vec());
+            fonts.load_font_data(dejavu::sans::bold().to_vec());
+            fonts.set_sans_serif_family("DejaVu Sans");
+            Arc::new(fonts)
+        })
+        .clone();
+    let opt = resvg::usvg::Options {
         font_family: "DejaVu Sans".to_owned(),
+        fontdb,
         ..Default::default()
     };
-    {
-        let fonts = opt.fontdb_mut();
-        fonts.load_font_data(dejavu::sans::regular().to_vec());
-        fonts.load_font_data(dejavu::sans::bold().to_vec());
-        fonts.set_sans_serif_family("DejaVu Sans");
-    }
     let tree = resvg::usvg::Tree::from_str(svg, &opt).context("parsing the drawing")?;
     let size = tree
         .size()

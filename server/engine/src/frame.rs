@@ -616,6 +616,23 @@ pub fn packed_rgb_view<'a>(
     }))
 }
 
+/// The frame's region as packed RGB8: read in place when [`packed_rgb_view`] can, else converted by
+/// [`to_rgb`] into `out`.
+pub fn read_rgb<'a>(
+    frame: &FrameRef<'a>,
+    region: Option<Region>,
+    yuv_spec: YuvSpec,
+    limits: &FrameLimits,
+    scratch: &mut DecodeScratch,
+    out: &'a mut RgbImage,
+) -> Result<RgbView<'a>, FrameError> {
+    if let Some(view) = packed_rgb_view(frame, region, limits)? {
+        return Ok(view);
+    }
+    to_rgb(frame, region, yuv_spec, limits, scratch, out)?;
+    Ok(out.view())
+}
+
 fn checked_region(region: Option<Region>, width: u32, height: u32) -> Result<Region, FrameError> {
     let region = region.unwrap_or(Region::whole(width, height));
     if !region.fits(width, height) {

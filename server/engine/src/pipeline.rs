@@ -102,20 +102,14 @@ pub fn prepare(
 ) -> Result<(QualityMeasures, u64), FrameError> {
     let start = Instant::now();
     // A packed RGB8 frame taken whole is read where it lies; every other frame is converted first.
-    let rgb = match frame::packed_rgb_view(frame, spec.region, &spec.limits)? {
-        Some(view) => view,
-        None => {
-            frame::to_rgb(
-                frame,
-                spec.region,
-                spec.yuv,
-                &spec.limits,
-                &mut scratch.decode,
-                &mut scratch.rgb,
-            )?;
-            scratch.rgb.view()
-        }
-    };
+    let rgb = frame::read_rgb(
+        frame,
+        spec.region,
+        spec.yuv,
+        &spec.limits,
+        &mut scratch.decode,
+        &mut scratch.rgb,
+    )?;
     let prepared = scratch
         .pre
         .prepare_view(&model.manifest().input, rgb, &mut scratch.tensor);

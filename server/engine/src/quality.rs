@@ -106,6 +106,20 @@ pub fn measure(luma: &[u8], width: usize, height: usize) -> QualityMeasures {
     }
 }
 
+/// Reflect-101 border (OpenCV's BORDER_REFLECT_101): index -1 maps to 1, index n maps to n - 2 (a side of 1
+/// maps to itself).
+fn reflect_101(i: isize, n: usize) -> usize {
+    if n == 1 {
+        0
+    } else if i < 0 {
+        (-i) as usize
+    } else if i as usize >= n {
+        2 * (n - 1) - i as usize
+    } else {
+        i as usize
+    }
+}
+
 /// Variance of the Laplacian (Pech-Pacheco et al., "Diatom autofocusing in brightfield microscopy", 2000):
 /// the 4-neighbour kernel [0 1 0; 1 -4 1; 0 1 0] with reflected borders (as OpenCV's `Laplacian` with
 /// ksize 1 and its default BORDER_REFLECT_101), then the population variance of the response.
@@ -113,18 +127,7 @@ pub fn laplacian_variance(luma: &[u8], width: usize, height: usize) -> f64 {
     if width == 0 || height == 0 || luma.len() < width * height {
         return 0.0;
     }
-    // Reflect-101: index -1 maps to 1, index n maps to n - 2 (a side of 1 maps to itself).
-    let reflect = |i: isize, n: usize| -> usize {
-        if n == 1 {
-            0
-        } else if i < 0 {
-            (-i) as usize
-        } else if i as usize >= n {
-            2 * (n - 1) - i as usize
-        } else {
-            i as usize
-        }
-    };
+    let reflect = reflect_101;
     // Integer responses (|v| <= 1020) summed exactly in i64; the same sums in f64 would be exact too, so the
     // result does not depend on the order of summation.
     let mut sum: i64 = 0;
@@ -185,18 +188,7 @@ mod tests {
     /// The Laplacian's variance written plainly (every response in i64 with reflected indices, then the
     /// population variance), to check the chunked, vectorised version on awkward widths.
     fn plain_laplacian_variance(luma: &[u8], w: usize, h: usize) -> f64 {
-        let reflect = |i: isize, n: usize| -> usize {
-            if n == 1 {
-                0
-            } else if i < 0 {
-                (-i) as usize
-            } else if i as usize >= n {
-                2 * (n - 1) - i as usize
-            } else {
-                i as usize
-            }
-        };
-        let at = |x: isize, y: isize| i64::from(luma[reflect(y, h) * w + reflect(x, w)]);
+        let at = |x: isize, y: isize| i64::from(luma[reflect_101(y, h) * w + reflect_101(x, w)]);
         let (mut sum, mut sq) = (0i64, 0i64);
         for y in 0..h as isize {
             for x in 0..w as isize {
