@@ -344,7 +344,8 @@ impl RgbImage {
     fn reset(&mut self, width: u32, height: u32) {
         self.width = width;
         self.height = height;
-        self.data.clear();
+        // Every converter writes every byte of the picture, so a buffer that already has the length is not
+        // cleared: clearing a 1920x1080 picture wrote 6 MB per frame for nothing.
         self.data.resize(width as usize * height as usize * 3, 0);
     }
 }
@@ -559,6 +560,23 @@ pub fn to_rgb(
     scratch: &mut DecodeScratch,
     out: &mut RgbImage,
 ) -> Result<(), FrameError> {
+    to_rgb_rows(frame, region, yuv_spec, limits, scratch, out, None)
+}
+
+/// As [`to_rgb`], but when `rows` is given (one flag per row of the region) only the flagged rows need to
+/// be right: an NV12 or I420 frame then converts just those rows and leaves the others as they were in
+/// `out`. The resize reads two rows per output row when it shrinks with bilinear interpolation
+/// ([`crate::preprocess::rows_read`]), so a 1920x1080 frame for a 224x224 input converts 448 of its 1080
+/// rows. Every other format, and a `rows` of the wrong length, converts every row.
+pub fn to_rgb_rows(
+    frame: &FrameRef<'_>,
+    region: Option<Region>,
+    yuv_spec: YuvSpec,
+    limits: &FrameLimits,
+    scratch: &mut DecodeScratch,
+    out: &mut RgbImage,
+    rows: Option<&[bool]>,
+) -> Result<(), FrameError> {
     if frame.format.is_encoded() {
         let DecodeScratch {
             decoded,
@@ -574,7 +592,7 @@ pub fn to_rgb(
             stride: width as usize * 3,
             data: decoded,
         };
-        return convert_region(&packed, region, yuv_spec, aligned, planes, out);
+        return convert_region(&packed, region, yuv_spec, aligned, planes, out, None);
     }
     let checked = frame.check(limits)?;
     let region = checked_region(region, checked.width, checked.height)?;
@@ -585,6 +603,7 @@ pub fn to_rgb(
         &mut scratch.aligned,
         &mut scratch.planes,
         out,
+        rows,
     )
 }
 
@@ -626,10 +645,23 @@ pub fn read_rgb<'a>(
     scratch: &mut DecodeScratch,
     out: &'a mut RgbImage,
 ) -> Result<RgbView<'a>, FrameError> {
+    read_rgb_rows(frame, region, yuv_spec, limits, scratch, out, None)
+}
+
+/// As [`read_rgb`], converting only the flagged rows where [`to_rgb_rows`] can.
+pub fn read_rgb_rows<'a>(
+    frame: &FrameRef<'a>,
+    region: Option<Region>,
+    yuv_spec: YuvSpec,
+    limits: &FrameLimits,
+    scratch: &mut DecodeScratch,
+    out: &'a mut RgbImage,
+    rows: Option<&[bool]>,
+) -> Result<RgbView<'a>, FrameError> {
     if let Some(view) = packed_rgb_view(frame, region, limits)? {
         return Ok(view);
     }
-    to_rgb(frame, region, yuv_spec, limits, scratch, out)?;
+    to_rgb_rows(frame, region, yuv_spec, limits, scratch, out, rows)?;
     Ok(out.view())
 }
 
@@ -652,6 +684,7 @@ fn convert_region(
     aligned: &mut RgbImage,
     planes: &mut YuvPlanes,
     out: &mut RgbImage,
+    rows: Option<&[bool]>,
 ) -> Result<(), FrameError> {
     let (sx, sy) = frame.format.chroma_steps();
     if sx == 1 && sy == 1 {
@@ -672,10 +705,10 @@ fn convert_region(
     };
     if wide == region {
         out.reset(region.width, region.height);
-        return convert_yuv(frame, region, yuv_spec, planes, out);
+        return convert_yuv(frame, region, yuv_spec, planes, out, rows);
     }
     aligned.reset(wide.width, wide.height);
-    convert_yuv(frame, wide, yuv_spec, planes, aligned)?;
+    convert_yuv(frame, wide, yuv_spec, planes, aligned, None)?;
     out.reset(region.width, region.height);
     let (dx, dy) = ((region.x - x0) as usize, (region.y - y0) as usize);
     let src_row = wide.width as usize * 3;
@@ -929,8 +962,10 @@ fn convert_yuv(
     spec: YuvSpec,
     planes: &mut YuvPlanes,
     out: &mut RgbImage,
+    rows: Option<&[bool]>,
 ) -> Result<(), FrameError> {
     let (range, matrix) = yuv_params(spec);
+    let rows = rows.filter(|r| r.len() == region.height as usize);
     let (x, y) = (region.x as usize, region.y as usize);
     let (w, h) = (region.width as usize, region.height as usize);
     let stride = frame.stride;
@@ -955,23 +990,27 @@ fn convert_yuv(
                     repack(uv_plane, stride, x, y / 2, w, h / 2, &mut planes.u);
                     (&planes.y, &planes.u)
                 };
-            let image = yuv::YuvBiPlanarImage {
-                y_plane: luma,
-                y_stride: w as u32,
-                uv_plane: chroma,
-                uv_stride: w as u32,
-                width: region.width,
-                height: region.height,
-            };
-            yuv::yuv_nv12_to_rgb(
-                &image,
-                &mut out.data,
-                rgb_stride,
-                range,
-                matrix,
-                yuv::YuvConversionMode::Balanced,
-            )
-            .map_err(fail)
+            for (a, b) in row_runs(rows, h) {
+                // Rows a..b (a even, or a run of one row) use chroma rows a/2 onwards.
+                let image = yuv::YuvBiPlanarImage {
+                    y_plane: &luma[a * w..b * w],
+                    y_stride: w as u32,
+                    uv_plane: &chroma[a / 2 * w..(b - a).div_ceil(2) * w + a / 2 * w],
+                    uv_stride: w as u32,
+                    width: region.width,
+                    height: (b - a) as u32,
+                };
+                yuv::yuv_nv12_to_rgb(
+                    &image,
+                    &mut out.data[a * rgb_stride as usize..b * rgb_stride as usize],
+                    rgb_stride,
+                    range,
+                    matrix,
+                    yuv::YuvConversionMode::Balanced,
+                )
+                .map_err(fail)?;
+            }
+            Ok(())
         }
         PixelFormat::I420 => {
             let c = stride / 2;
@@ -980,17 +1019,23 @@ fn convert_yuv(
             repack(y_plane, stride, x, y, w, h, &mut planes.y);
             repack(u_plane, c, x / 2, y / 2, w / 2, h / 2, &mut planes.u);
             repack(v_plane, c, x / 2, y / 2, w / 2, h / 2, &mut planes.v);
-            let image = yuv::YuvPlanarImage {
-                y_plane: &planes.y,
-                y_stride: w as u32,
-                u_plane: &planes.u,
-                u_stride: (w / 2) as u32,
-                v_plane: &planes.v,
-                v_stride: (w / 2) as u32,
-                width: region.width,
-                height: region.height,
-            };
-            yuv::yuv420_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
+            let c = w / 2;
+            for (a, b) in row_runs(rows, h) {
+                let chroma = a / 2 * c..(b - a).div_ceil(2) * c + a / 2 * c;
+                let image = yuv::YuvPlanarImage {
+                    y_plane: &planes.y[a * w..b * w],
+                    y_stride: w as u32,
+                    u_plane: &planes.u[chroma.clone()],
+                    u_stride: c as u32,
+                    v_plane: &planes.v[chroma],
+                    v_stride: c as u32,
+                    width: region.width,
+                    height: (b - a) as u32,
+                };
+                let out = &mut out.data[a * rgb_stride as usize..b * rgb_stride as usize];
+                yuv::yuv420_to_rgb(&image, out, rgb_stride, range, matrix).map_err(fail)?;
+            }
+            Ok(())
         }
         _ => {
             let packed: &[u8] = if whole && stride == 2 * w && frame.data.len() == 2 * w * h {
@@ -1008,6 +1053,32 @@ fn convert_yuv(
             yuv::yuyv422_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
         }
     }
+}
+
+/// The runs of rows to convert, as half-open ranges: all `height` rows at once without `rows`, else the
+/// flagged ones. A 4:2:0 converter pairs the first row it is given with the next under one chroma row, so a
+/// run that starts on an odd row is cut after that row.
+fn row_runs(rows: Option<&[bool]>, height: usize) -> Vec<(usize, usize)> {
+    let Some(rows) = rows else {
+        return vec![(0, height)];
+    };
+    let mut runs = Vec::new();
+    let mut y = 0;
+    while y < height {
+        if !rows[y] {
+            y += 1;
+            continue;
+        }
+        let start = y;
+        y += 1;
+        if start % 2 == 0 {
+            while y < height && rows[y] {
+                y += 1;
+            }
+        }
+        runs.push((start, y));
+    }
+    runs
 }
 
 /// Copies `rows` rows of `row_bytes` bytes, starting at byte `x` of row `y` of a plane with `stride`, into

@@ -11,7 +11,7 @@ use crate::frame::{
 };
 use crate::latency::StageTimings;
 use crate::model::{InferenceError, Model};
-use crate::preprocess::Preprocessor;
+use crate::preprocess::{self, Preprocessor};
 use crate::quality::{self, QualityMeasures, QualitySpec, QualityVerdict};
 
 /// How a stream's frames are read.
@@ -75,6 +75,7 @@ pub struct Scratch {
     decode: DecodeScratch,
     rgb: RgbImage,
     pre: Preprocessor,
+    rows: Vec<bool>,
     /// The last prepared input tensor.
     pub tensor: Vec<f32>,
 }
@@ -101,18 +102,32 @@ pub fn prepare(
     scratch: &mut Scratch,
 ) -> Result<(QualityMeasures, u64), FrameError> {
     let start = Instant::now();
+    let input = &model.manifest().input;
+    // Only the rows the resize reads are converted, where the format allows (NV12 and I420 shrunk with
+    // bilinear interpolation); the size is the region's, or the frame's, known before decoding for raw
+    // formats only.
+    let size = match spec.region {
+        Some(r) => Some((r.width, r.height)),
+        None if !frame.format.is_encoded() => Some((frame.width, frame.height)),
+        None => None,
+    };
+    let rows = match size {
+        Some((w, h)) if preprocess::rows_read(input, w, h, &mut scratch.rows) => {
+            Some(scratch.rows.as_slice())
+        }
+        _ => None,
+    };
     // A packed RGB8 frame taken whole is read where it lies; every other frame is converted first.
-    let rgb = frame::read_rgb(
+    let rgb = frame::read_rgb_rows(
         frame,
         spec.region,
         spec.yuv,
         &spec.limits,
         &mut scratch.decode,
         &mut scratch.rgb,
+        rows,
     )?;
-    let prepared = scratch
-        .pre
-        .prepare_view(&model.manifest().input, rgb, &mut scratch.tensor);
+    let prepared = scratch.pre.prepare_view(input, rgb, &mut scratch.tensor);
     let (w, h) = prepared.size;
     let measures = quality::measure(prepared.luma, w as usize, h as usize);
     Ok((measures, micros_since(start)))

@@ -126,7 +126,7 @@ impl Preprocessor {
     pub fn prepare<'a>(
         &'a mut self,
         spec: &InputSpec,
-        rgb: &RgbImage,
+        rgb: &'a RgbImage,
         tensor: &mut Vec<f32>,
     ) -> Prepared<'a> {
         self.prepare_view(spec, rgb.view(), tensor)
@@ -136,17 +136,27 @@ impl Preprocessor {
     pub fn prepare_view<'a>(
         &'a mut self,
         spec: &InputSpec,
-        rgb: RgbView<'_>,
+        rgb: RgbView<'a>,
         tensor: &mut Vec<f32>,
     ) -> Prepared<'a> {
         let plan = plan_resize(spec, rgb.width, rgb.height);
-        self.resize(spec, &rgb, &plan);
-        normalise(spec, &plan.place, &self.resized, tensor);
-        luma_of(&self.resized, &mut self.luma);
+        let (pw, ph) = (plan.place.width, plan.place.height);
+        // A picture that already has the placement's size and is taken whole is read where it lies (the
+        // copy that resizing would make is the identity).
+        let whole = plan.crop == (0, 0, pw, ph) && (rgb.width, rgb.height) == (pw, ph);
+        let picture: &'a [u8] = match rgb.data.get(..pw as usize * ph as usize * 3) {
+            Some(data) if whole => data,
+            _ => {
+                self.resize(spec, &rgb, &plan);
+                &self.resized
+            }
+        };
+        normalise(spec, &plan.place, picture, tensor);
+        luma_of(picture, &mut self.luma);
         Prepared {
-            picture: &self.resized,
+            picture,
             luma: &self.luma,
-            size: (plan.place.width, plan.place.height),
+            size: (pw, ph),
         }
     }
 
@@ -219,6 +229,34 @@ impl Preprocessor {
             _ => self.resized.fill(0),
         }
     }
+}
+
+/// Flags, in `mask` (one per row of a `width` x `height` picture), the rows the manifest's resize reads with
+/// a weight other than zero, and says whether that is fewer than all rows. Only bilinear interpolation
+/// reads so few: fast_image_resize's interpolating bilinear filter gives source row `y` the weight
+/// `1 - |y - c|` for output row `i`, with `c = top + (i + 0.5) * scale - 0.5` (its
+/// `precompute_coefficients`, support 1), so only rows within 1 of `c` count. The test below holds
+/// the resize's output from a picture with only these rows right to the one from the whole picture.
+pub fn rows_read(spec: &InputSpec, width: u32, height: u32, mask: &mut Vec<bool>) -> bool {
+    mask.clear();
+    if spec.interpolation != Interpolation::Bilinear || height == 0 {
+        return false;
+    }
+    let plan = plan_resize(spec, width, height);
+    let (_, top, _, crop_h) = plan.crop;
+    let out_h = plan.place.height;
+    mask.resize(height as usize, false);
+    let scale = f64::from(crop_h) / f64::from(out_h);
+    for i in 0..out_h {
+        let c = f64::from(top) + (f64::from(i) + 0.5) * scale - 0.5;
+        // Rows within 1 of c, bounds included (a row at exactly 1 has weight 0 and is flagged anyway).
+        let first = (c - 1.0).ceil().max(0.0) as usize;
+        let last = ((c + 1.0).floor().max(0.0) as usize).min(height as usize - 1);
+        for flag in &mut mask[first.min(last)..=last] {
+            *flag = true;
+        }
+    }
+    mask.iter().any(|read| !read)
 }
 
 /// Area weights for shrinking `src` samples to `dst` (`src >= dst`): for each output sample, the share of each
@@ -398,6 +436,126 @@ mod tests {
         s.layout = Layout::Nhwc;
         normalise(&s, &place, &[0, 51, 102], &mut t);
         assert_eq!(t, vec![1.0, 1.0, 1.0, 0.4, 0.2, 0.0]);
+    }
+
+    /// Converting only the rows `rows_read` flags gives the resize exactly the output of the whole
+    /// conversion, whatever the rows left out hold (here a fixed garbage value, as after another frame).
+    #[test]
+    fn converting_only_the_rows_read_changes_nothing() {
+        use crate::frame::{self, DecodeScratch, FrameRef, PixelFormat, Region};
+        let mut state = 0x2545_f491_4f6c_dd1du64;
+        let mut noise = |n: usize| -> Vec<u8> {
+            (0..n)
+                .map(|_| {
+                    state ^= state << 13;
+                    state ^= state >> 7;
+                    state ^= state << 17;
+                    (state >> 24) as u8
+                })
+                .collect()
+        };
+        let mut specs = vec![
+            spec(ResizeRule::Stretch, 224, 224),
+            spec(ResizeRule::CentreCrop, 96, 96),
+            spec(ResizeRule::Letterbox, 224, 224),
+            spec(ResizeRule::Stretch, 300, 200),
+        ];
+        let mut area = spec(ResizeRule::Stretch, 224, 224);
+        area.interpolation = Interpolation::Area;
+        specs.push(area);
+        let mut sparse_seen = 0;
+        for (w, h) in [
+            (1920u32, 1080u32),
+            (640, 480),
+            (322, 242),
+            (226, 224),
+            (100, 60),
+        ] {
+            for format in [PixelFormat::Nv12, PixelFormat::I420] {
+                let data = noise(w as usize * h as usize * 3 / 2);
+                let frame = FrameRef {
+                    format,
+                    width: w,
+                    height: h,
+                    stride: 0,
+                    data: &data,
+                };
+                let regions = [
+                    None,
+                    Some(Region {
+                        x: 2,
+                        y: 4,
+                        width: w / 2,
+                        height: h / 2,
+                    }),
+                    Some(Region {
+                        x: 3,
+                        y: 5,
+                        width: w / 2 + 1,
+                        height: h / 2 + 1,
+                    }),
+                ];
+                for s in &specs {
+                    for region in regions {
+                        let size = region.map_or((w, h), |r| (r.width, r.height));
+                        let mut mask = Vec::new();
+                        let sparse = rows_read(s, size.0, size.1, &mut mask);
+                        let limits = &frame::DEFAULT_FRAME_LIMITS;
+                        let mut scratch = DecodeScratch::default();
+                        let mut whole = RgbImage::default();
+                        frame::to_rgb(
+                            &frame,
+                            region,
+                            Default::default(),
+                            limits,
+                            &mut scratch,
+                            &mut whole,
+                        )
+                        .expect("converts");
+                        let mut part = RgbImage {
+                            width: size.0,
+                            height: size.1,
+                            data: vec![0xA5; whole.data.len()],
+                        };
+                        let rows = sparse.then_some(mask.as_slice());
+                        frame::to_rgb_rows(
+                            &frame,
+                            region,
+                            Default::default(),
+                            limits,
+                            &mut scratch,
+                            &mut part,
+                            rows,
+                        )
+                        .expect("converts");
+                        // Regions not on whole chroma samples are converted whole.
+                        if sparse && whole.data != part.data {
+                            sparse_seen += 1;
+                        }
+                        let (mut a, mut b) = (Vec::new(), Vec::new());
+                        Preprocessor::new().prepare(s, &whole, &mut a);
+                        Preprocessor::new().prepare(s, &part, &mut b);
+                        assert!(
+                            a == b,
+                            "{format} {w}x{h} {region:?} {:?} {}x{}: the resize read a row left out",
+                            s.resize,
+                            s.width,
+                            s.height
+                        );
+                    }
+                }
+            }
+        }
+        // 1920x1080 to 224x224 reads 448 of 1080 rows.
+        let mut mask = Vec::new();
+        assert!(rows_read(
+            &spec(ResizeRule::Stretch, 224, 224),
+            1920,
+            1080,
+            &mut mask
+        ));
+        assert_eq!(mask.iter().filter(|r| **r).count(), 448);
+        assert!(sparse_seen > 20, "only {sparse_seen} cases left rows out");
     }
 
     #[test]
