@@ -468,15 +468,20 @@ fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<ser
             // The same work in its three parts, timed one by one.
             let (mut decode, mut rgb, mut pre, mut tensor) = Default::default();
             let mut parts: [Vec<f64>; 3] = Default::default();
+            // As the pipeline does: only the rows the resize reads are converted where the format allows.
+            let mut mask = Vec::new();
+            let sparse = framewise_engine::preprocess::rows_read(spec, w, h, &mut mask);
+            let read = sparse.then_some(mask.as_slice());
             for (i, frame) in refs.iter().cycle().take(frames + 5).enumerate() {
                 let t0 = Instant::now();
-                let view = framewise_engine::frame::read_rgb(
+                let view = framewise_engine::frame::read_rgb_rows(
                     frame,
                     None,
                     frame_spec.yuv,
                     &frame_spec.limits,
                     &mut decode,
                     &mut rgb,
+                    read,
                 )?;
                 let t1 = Instant::now();
                 let prepared = Preprocessor::prepare_view(&mut pre, spec, view, &mut tensor);
@@ -522,15 +527,18 @@ fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<ser
 
 async fn overhead(frames: usize) -> Result<serde_json::Value> {
     let (_, bench_dir) = bench_package()?;
+    let socket =
+        std::env::temp_dir().join(format!("framewise-overhead-{}.sock", std::process::id()));
     let mut rows = Vec::new();
     println!(
-        "| engine | frames | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which transport (outside the server) p50 |"
+        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which transport (outside the server) p50 |"
     );
-    println!("|---|---|---|---|---|---|---|---|");
+    println!("|---|---|---|---|---|---|---|---|---|");
     for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
         let options = engine(kind, 1);
         let config = framewise_server::ServerConfig {
             listen: "127.0.0.1:0".parse()?,
+            listen_unix: Some(socket.clone()),
             demo_model: false,
             models: vec![framewise_server::config::ModelEntry {
                 path: bench_dir.clone(),
@@ -542,7 +550,10 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
             ..Default::default()
         };
         let server = framewise_server::start(config, None).await?;
-        let url = format!("http://{}", server.addr);
+        let connections = [
+            ("tcp loopback", format!("http://{}", server.addr)),
+            ("unix socket", format!("unix:{}", socket.display())),
+        ];
         for (format, w, h) in [
             (PixelFormat::Rgb8, 224u32, 224u32),
             (PixelFormat::Nv12, 1920, 1080),
@@ -551,23 +562,26 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
                 .into_iter()
                 .map(Into::into)
                 .collect();
-            let samples = one_session(&url, format, w, h, &data, frames).await?;
-            let rtt: Vec<f64> = samples.iter().map(|s| s.0).collect();
-            let inf: Vec<f64> = samples.iter().map(|s| s.1).collect();
-            let over: Vec<f64> = samples.iter().map(|s| s.0 - s.1).collect();
-            let pre: Vec<f64> = samples.iter().map(|s| s.2).collect();
-            let outside: Vec<f64> = samples.iter().map(|s| s.0 - s.3).collect();
-            let ((rtt50, _), (inf50, _), (o50, o99)) = (summary(rtt), summary(inf), summary(over));
-            let ((pre50, _), (out50, _)) = (summary(pre), summary(outside));
-            println!(
-                "| {kind} | {format} {w}x{h} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {out50:.3} |"
-            );
-            rows.push(
-                json!({"engine": kind.to_string(), "format": format.to_string(), "width": w,
-                "height": h, "round_trip_p50_ms": rtt50, "inference_p50_ms": inf50,
-                "overhead_p50_ms": o50, "overhead_p99_ms": o99, "preprocess_p50_ms": pre50,
-                "outside_server_p50_ms": out50}),
-            );
+            for (connection, url) in &connections {
+                let samples = one_session(url, format, w, h, &data, frames).await?;
+                let rtt: Vec<f64> = samples.iter().map(|s| s.0).collect();
+                let inf: Vec<f64> = samples.iter().map(|s| s.1).collect();
+                let over: Vec<f64> = samples.iter().map(|s| s.0 - s.1).collect();
+                let pre: Vec<f64> = samples.iter().map(|s| s.2).collect();
+                let outside: Vec<f64> = samples.iter().map(|s| s.0 - s.3).collect();
+                let ((rtt50, _), (inf50, _), (o50, o99)) =
+                    (summary(rtt), summary(inf), summary(over));
+                let ((pre50, _), (out50, _)) = (summary(pre), summary(outside));
+                println!(
+                    "| {kind} | {format} {w}x{h} | {connection} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {out50:.3} |"
+                );
+                rows.push(
+                    json!({"engine": kind.to_string(), "format": format.to_string(), "width": w,
+                    "height": h, "connection": connection, "round_trip_p50_ms": rtt50,
+                    "inference_p50_ms": inf50, "overhead_p50_ms": o50, "overhead_p99_ms": o99,
+                    "preprocess_p50_ms": pre50, "outside_server_p50_ms": out50}),
+                );
+            }
         }
         server.stop().await?;
     }
@@ -585,16 +599,8 @@ async fn one_session(
     data: &[prost::bytes::Bytes],
     frames: usize,
 ) -> Result<Vec<(f64, f64, f64, f64)>> {
-    use pb::frame_analysis_client::FrameAnalysisClient;
-    let channel = tonic::transport::Endpoint::from_shared(url.to_string())?
-        .tcp_nodelay(true)
-        .initial_stream_window_size(framewise_server::STREAM_WINDOW_BYTES)
-        .initial_connection_window_size(framewise_server::CONNECTION_WINDOW_BYTES)
-        .connect()
-        .await?;
-    let mut client = FrameAnalysisClient::new(channel)
-        .max_decoding_message_size(64 << 20)
-        .max_encoding_message_size(64 << 20);
+    // The client's own connection code (TCP or Unix socket, the same HTTP/2 windows as the CLI).
+    let mut client = framewise_cli::client::connect(url).await?;
     let (tx, rx) = tokio::sync::mpsc::channel(2);
     tx.send(pb::SessionInput {
         item: Some(pb::session_input::Item::Opening(pb::SessionOpening {

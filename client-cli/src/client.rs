@@ -13,20 +13,46 @@ pub const SEND_BUFFER: usize = 4;
 /// Largest message the client sends or accepts: a 4K UHD RGBA frame plus headroom (matches the server's default).
 pub const MAX_MESSAGE_BYTES: usize = 36 * 1024 * 1024;
 
-/// Connects to a server URL (`http://host:port`).
+/// Connects to a server: `http://host:port`, `https://host:port`, or `unix:PATH` for a server's Unix-domain
+/// socket on this host (`listen_unix`), where large frames move about twice as fast as over TCP loopback.
 pub async fn connect(url: &str) -> Result<FrameAnalysisClient<Channel>> {
-    let endpoint = Endpoint::from_shared(url.to_string())
-        .with_context(|| format!("`{url}` is not a server URL"))?
-        .tcp_nodelay(true)
-        .initial_stream_window_size(framewise_server::STREAM_WINDOW_BYTES)
-        .initial_connection_window_size(framewise_server::CONNECTION_WINDOW_BYTES);
-    let channel = endpoint
-        .connect()
-        .await
-        .map_err(|e| ServerFailure(format!("connecting to {url}: {e}")))?;
+    let channel = match unix_socket_path(url) {
+        Some(path) => {
+            // The URI is required by the transport but unused: the connector below opens the socket.
+            let endpoint = windows(Endpoint::from_static("http://localhost"));
+            let connector = tower::service_fn(move |_: tonic::codegen::http::Uri| {
+                let path = path.clone();
+                async move {
+                    let stream = tokio::net::UnixStream::connect(path).await?;
+                    Ok::<_, std::io::Error>(hyper_util::rt::TokioIo::new(stream))
+                }
+            });
+            endpoint.connect_with_connector(connector).await
+        }
+        None => {
+            let endpoint = Endpoint::from_shared(url.to_string())
+                .with_context(|| format!("`{url}` is not a server URL"))?
+                .tcp_nodelay(true);
+            windows(endpoint).connect().await
+        }
+    }
+    .map_err(|e| ServerFailure(format!("connecting to {url}: {e}")))?;
     Ok(FrameAnalysisClient::new(channel)
         .max_decoding_message_size(MAX_MESSAGE_BYTES)
         .max_encoding_message_size(MAX_MESSAGE_BYTES))
+}
+
+/// The HTTP/2 windows the server uses, so that a whole frame can be in flight.
+fn windows(endpoint: Endpoint) -> Endpoint {
+    endpoint
+        .initial_stream_window_size(framewise_server::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(framewise_server::CONNECTION_WINDOW_BYTES)
+}
+
+/// The socket path of a `unix:PATH` (or `unix://PATH`) server address.
+pub fn unix_socket_path(url: &str) -> Option<std::path::PathBuf> {
+    let path = url.strip_prefix("unix://").or(url.strip_prefix("unix:"))?;
+    (!path.is_empty()).then(|| path.into())
 }
 
 /// Adds the bearer token, when there is one.

@@ -75,7 +75,15 @@ async fn converse(
     opening: pb::SessionOpening,
     inputs: Vec<pb::SessionInput>,
 ) -> Result<Vec<pb::SessionOutput>, tonic::Status> {
-    let mut grpc = client(url).await;
+    converse_on(client(url).await, opening, inputs).await
+}
+
+/// As [`converse`], on a connected client.
+async fn converse_on(
+    mut grpc: FrameAnalysisClient<Channel>,
+    opening: pb::SessionOpening,
+    inputs: Vec<pb::SessionInput>,
+) -> Result<Vec<pb::SessionOutput>, tonic::Status> {
     let (tx, rx) = mpsc::channel(8);
     tx.send(pb::SessionInput {
         item: Some(pb::session_input::Item::Opening(opening)),
@@ -283,6 +291,78 @@ async fn streamed_results_equal_the_offline_engine_bit_for_bit() {
         }
     }
     t.server.stop().await.expect("stops");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_unix_socket_gives_the_answers_tcp_gives_and_guards_its_path() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = std::env::temp_dir().join(format!("framewise-unix-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).expect("temp dir");
+    let path = dir.join("frames.sock");
+    let config = || ServerConfig {
+        listen: "127.0.0.1:0".parse().expect("addr"),
+        listen_unix: Some(path.clone()),
+        ..Default::default()
+    };
+    let registry = || Some(ModelRegistry::new(vec![demo_model()]));
+    // Something other than a socket at the path is left alone and refused.
+    std::fs::write(&path, b"not a socket").expect("write");
+    let refused = framewise_server::start(config(), registry()).await;
+    let message = format!("{:#}", refused.err().expect("a regular file is refused"));
+    assert!(message.contains("is not a socket"), "{message}");
+    assert_eq!(std::fs::read(&path).expect("still there"), b"not a socket");
+    std::fs::remove_file(&path).expect("remove");
+    // A socket file left by a server that is gone is replaced.
+    drop(std::os::unix::net::UnixListener::bind(&path).expect("stale socket"));
+    let t = start(config()).await;
+    let mode = std::fs::metadata(&path)
+        .expect("socket")
+        .permissions()
+        .mode();
+    assert_eq!(mode & 0o777, 0o660, "owner and group only");
+    // One that a running server answers on is not taken over.
+    let second = framewise_server::start(config(), registry()).await;
+    let message = format!("{:#}", second.err().expect("a served socket is refused"));
+    assert!(message.contains("another process is serving"), "{message}");
+    // The same frames over both connections give the same answers.
+    let mut rng = Rng::new(77);
+    let inputs: Vec<pb::SessionInput> = (0..12u64)
+        .map(|seq| {
+            let data = noise_frame(&mut rng, 64, 48);
+            frame_msg(
+                seq,
+                1_000 + seq as i64 * 33_000,
+                PixelFormat::Rgb8,
+                64,
+                48,
+                data,
+            )
+        })
+        .collect();
+    let over_tcp = converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs.clone())
+        .await
+        .expect("tcp session");
+    let unix_client = framewise_cli::client::connect(&format!("unix:{}", path.display()))
+        .await
+        .expect("connects over the socket");
+    let over_unix = converse_on(unix_client, opening(pb::FramePolicy::EveryFrame), inputs)
+        .await
+        .expect("unix session");
+    let results = |outputs: &[pb::SessionOutput]| -> Vec<(u64, Vec<f32>, Vec<f32>)> {
+        answers(outputs)
+            .iter()
+            .map(|a| match &a.outcome {
+                Some(pb::answer::Outcome::Result(r)) => (a.seq, r.raw.clone(), r.smoothed.clone()),
+                other => panic!("frame {}: {other:?}", a.seq),
+            })
+            .collect()
+    };
+    let (tcp, unix) = (results(&over_tcp), results(&over_unix));
+    assert_eq!(tcp.len(), 12);
+    assert_eq!(tcp, unix, "the connection must not change an answer");
+    t.server.stop().await.expect("stops");
+    assert!(!path.exists(), "the socket file is removed at shutdown");
+    let _ = std::fs::remove_dir(&dir);
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

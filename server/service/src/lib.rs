@@ -19,6 +19,7 @@ pub mod session;
 pub mod stats;
 
 use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Duration;
@@ -50,6 +51,8 @@ pub const HTTP2_MAX_FRAME_BYTES: u32 = 1 << 20;
 pub struct RunningServer {
     /// The gRPC address it listens on.
     pub addr: SocketAddr,
+    /// The Unix-domain socket it also listens on, when configured.
+    pub unix_path: Option<PathBuf>,
     /// The metrics address, when enabled.
     pub metrics_addr: Option<SocketAddr>,
     /// Server statistics.
@@ -116,6 +119,10 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
         .await
         .with_context(|| format!("binding {}", config.listen))?;
     let addr = listener.local_addr()?;
+    let unix_listener = match &config.listen_unix {
+        Some(path) => Some(bind_unix(path).await?),
+        None => None,
+    };
     let metrics_addr = match config.metrics_listen {
         Some(at) => {
             let l = TcpListener::bind(at)
@@ -148,10 +155,13 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     // HTTP/2 flow control sized for frames: a 1920x1080 NV12 frame is 3 MB, which the protocol's default
     // 64 KiB windows would let through in many acknowledged pieces. The windows also bound what one session
     // and one connection can have in flight before the server reads it.
-    let mut builder = tonic::transport::Server::builder()
-        .initial_stream_window_size(Some(STREAM_WINDOW_BYTES))
-        .initial_connection_window_size(Some(CONNECTION_WINDOW_BYTES))
-        .max_frame_size(Some(HTTP2_MAX_FRAME_BYTES));
+    let transport = || {
+        tonic::transport::Server::builder()
+            .initial_stream_window_size(Some(STREAM_WINDOW_BYTES))
+            .initial_connection_window_size(Some(CONNECTION_WINDOW_BYTES))
+            .max_frame_size(Some(HTTP2_MAX_FRAME_BYTES))
+    };
+    let mut builder = transport();
     if let Some(tls) = &config.tls {
         let cert =
             std::fs::read(&tls.cert).with_context(|| format!("reading {}", tls.cert.display()))?;
@@ -165,15 +175,42 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
         builder = builder.tls_config(tls_config).context("TLS settings")?;
     }
     let transport_stop = CancellationToken::new();
-    let router = builder.add_service(health_service).add_service(grpc);
+    let stopped = |token: &CancellationToken| {
+        let token = token.clone();
+        async move { token.cancelled().await }
+    };
+    // No Nagle delay: an answer is a small write that must leave at once.
+    let incoming = tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true));
+    let tcp = builder
+        .add_service(health_service.clone())
+        .add_service(grpc.clone())
+        .serve_with_incoming_shutdown(incoming, stopped(&transport_stop));
+    // The same services on the Unix socket, without TLS (the socket file's permissions decide who connects).
+    let unix = unix_listener.map(|l| {
+        transport()
+            .add_service(health_service)
+            .add_service(grpc)
+            .serve_with_incoming_shutdown(
+                tokio_stream::wrappers::UnixListenerStream::new(l),
+                stopped(&transport_stop),
+            )
+    });
+    let unix_path = config.listen_unix.clone();
     let serve = {
-        let transport_stop = transport_stop.clone();
-        // No Nagle delay: an answer is a small write that must leave at once.
-        let incoming =
-            tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true));
-        router.serve_with_incoming_shutdown(incoming, async move {
-            transport_stop.cancelled().await;
-        })
+        let unix_path = unix_path.clone();
+        async move {
+            let unix = async move {
+                match unix {
+                    Some(serve) => serve.await,
+                    None => Ok(()),
+                }
+            };
+            let (tcp, unix) = tokio::join!(tcp, unix);
+            if let Some(path) = unix_path {
+                let _ = std::fs::remove_file(path);
+            }
+            tcp.and(unix)
+        }
     };
     let drain = config.drain();
     let task = {
@@ -222,9 +259,36 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     };
     Ok(RunningServer {
         addr,
+        unix_path,
         metrics_addr,
         stats,
         shutdown,
         task,
     })
+}
+
+/// Binds the Unix-domain socket at `path`: a socket file left by a server that is gone is replaced, one that a
+/// running server answers on is not, and anything else at the path is refused. The socket is made readable and
+/// writable by its owner and group only.
+async fn bind_unix(path: &Path) -> Result<tokio::net::UnixListener> {
+    use std::os::unix::fs::{FileTypeExt, PermissionsExt};
+    if let Ok(meta) = std::fs::symlink_metadata(path) {
+        anyhow::ensure!(
+            meta.file_type().is_socket(),
+            "{} exists and is not a socket; choose another listen_unix path",
+            path.display()
+        );
+        anyhow::ensure!(
+            tokio::net::UnixStream::connect(path).await.is_err(),
+            "another process is serving on {}",
+            path.display()
+        );
+        std::fs::remove_file(path)
+            .with_context(|| format!("removing the stale socket {}", path.display()))?;
+    }
+    let listener = tokio::net::UnixListener::bind(path)
+        .with_context(|| format!("binding the Unix socket {}", path.display()))?;
+    std::fs::set_permissions(path, std::fs::Permissions::from_mode(0o660))
+        .with_context(|| format!("setting the permissions of {}", path.display()))?;
+    Ok(listener)
 }

@@ -23,6 +23,9 @@ struct Args {
     /// gRPC address.
     #[arg(long)]
     listen: Option<SocketAddr>,
+    /// Also serve on a Unix-domain socket at this path (clients on the same host: `--server unix:PATH`).
+    #[arg(long)]
+    listen_unix: Option<PathBuf>,
     /// Prometheus text endpoint address (for instance 127.0.0.1:9464).
     #[arg(long)]
     metrics_listen: Option<SocketAddr>,
@@ -100,6 +103,9 @@ fn config_from(args: Args) -> Result<ServerConfig> {
     if let Some(v) = args.listen {
         config.listen = v;
     }
+    if args.listen_unix.is_some() {
+        config.listen_unix = args.listen_unix;
+    }
     if args.metrics_listen.is_some() {
         config.metrics_listen = args.metrics_listen;
     }
@@ -172,7 +178,7 @@ fn run() -> Result<()> {
     runtime.block_on(async move {
         eprintln!("framewise-server: {CAUTION}");
         let server = framewise_server::start(config, None).await?;
-        tracing::info!(addr = %server.addr, metrics = ?server.metrics_addr, "serving");
+        tracing::info!(addr = %server.addr, unix = ?server.unix_path, metrics = ?server.metrics_addr, "serving");
         let token = server.shutdown_token();
         tokio::spawn(async move {
             wait_for_signal().await;
