@@ -529,6 +529,13 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
     let (_, bench_dir) = bench_package()?;
     let socket =
         std::env::temp_dir().join(format!("framewise-overhead-{}.sock", std::process::id()));
+    // Frame files on a memory file system where there is one, as a capture process would place them.
+    let shm = std::path::Path::new("/dev/shm");
+    let frames_dir = if shm.is_dir() {
+        shm.to_path_buf()
+    } else {
+        std::env::temp_dir()
+    };
     let mut rows = Vec::new();
     println!(
         "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which transport (outside the server) p50 |"
@@ -539,6 +546,7 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
         let config = framewise_server::ServerConfig {
             listen: "127.0.0.1:0".parse()?,
             listen_unix: Some(socket.clone()),
+            shared_frames_dir: Some(frames_dir.clone()),
             demo_model: false,
             models: vec![framewise_server::config::ModelEntry {
                 path: bench_dir.clone(),
@@ -550,9 +558,11 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
             ..Default::default()
         };
         let server = framewise_server::start(config, None).await?;
+        let unix = format!("unix:{}", socket.display());
         let connections = [
-            ("tcp loopback", format!("http://{}", server.addr)),
-            ("unix socket", format!("unix:{}", socket.display())),
+            ("tcp loopback", format!("http://{}", server.addr), false),
+            ("unix socket", unix.clone(), false),
+            ("unix socket + frame file", unix, true),
         ];
         for (format, w, h) in [
             (PixelFormat::Rgb8, 224u32, 224u32),
@@ -562,8 +572,16 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
                 .into_iter()
                 .map(Into::into)
                 .collect();
-            for (connection, url) in &connections {
-                let samples = one_session(url, format, w, h, &data, frames).await?;
+            for (connection, url, by_file) in &connections {
+                let mut file = match by_file {
+                    true => Some(framewise_cli::client::FrameFile::create(
+                        &frames_dir,
+                        2,
+                        data[0].len() as u64,
+                    )?),
+                    false => None,
+                };
+                let samples = one_session(url, format, w, h, &data, frames, file.as_mut()).await?;
                 let rtt: Vec<f64> = samples.iter().map(|s| s.0).collect();
                 let inf: Vec<f64> = samples.iter().map(|s| s.1).collect();
                 let over: Vec<f64> = samples.iter().map(|s| s.0 - s.1).collect();
@@ -589,8 +607,9 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
 }
 
 /// One every-frame session: each frame is sent when the previous answer is back, then a pause to the next
-/// 33 ms tick, so no frame queues behind another. Returns (round trip, server-reported inference, preprocess,
-/// and total in the server), all in ms.
+/// 33 ms tick, so no frame queues behind another. With a frame file, each frame is written into it and sent
+/// as a file slice (the writing counts in the round trip). Returns (round trip, server-reported inference,
+/// preprocess, and total in the server), all in ms.
 async fn one_session(
     url: &str,
     format: PixelFormat,
@@ -598,6 +617,7 @@ async fn one_session(
     h: u32,
     data: &[prost::bytes::Bytes],
     frames: usize,
+    mut frame_file: Option<&mut framewise_cli::client::FrameFile>,
 ) -> Result<Vec<(f64, f64, f64, f64)>> {
     // The client's own connection code (TCP or Unix socket, the same HTTP/2 windows as the CLI).
     let mut client = framewise_cli::client::connect(url).await?;
@@ -605,6 +625,10 @@ async fn one_session(
     tx.send(pb::SessionInput {
         item: Some(pb::session_input::Item::Opening(pb::SessionOpening {
             policy: pb::FramePolicy::EveryFrame as i32,
+            frame_file: frame_file
+                .as_ref()
+                .map(|f| f.name().to_string())
+                .unwrap_or_default(),
             ..Default::default()
         })),
     })
@@ -617,16 +641,22 @@ async fn one_session(
     let mut out = Vec::with_capacity(frames);
     let start = Instant::now();
     for i in 0..frames + 10 {
+        let pixels = &data[i % data.len()];
+        let sent = Instant::now();
+        let (data, file_slice) = match frame_file.as_deref_mut() {
+            Some(file) => (Default::default(), Some(file.put(pixels)?)),
+            None => (pixels.clone(), None),
+        };
         let frame = pb::Frame {
+            file_slice,
             seq: i as u64,
             capture_time_us: 0,
             format: framewise_server::convert::wire_format(format) as i32,
             width: w,
             height: h,
             stride: 0,
-            data: data[i % data.len()].clone(),
+            data,
         };
-        let sent = Instant::now();
         tx.send(pb::SessionInput {
             item: Some(pb::session_input::Item::Frame(frame)),
         })

@@ -412,6 +412,7 @@ async fn one_session(
                 let due = start + interval.mul_f64(i as f64);
                 tokio::time::sleep_until(due.into()).await;
                 let frame = pb::Frame {
+                    file_slice: None,
                     seq: i,
                     capture_time_us: (due.duration_since(start).as_micros() as i64) + 1_000_000,
                     format: framewise_server::convert::wire_format(format) as i32,

@@ -55,6 +55,87 @@ pub fn unix_socket_path(url: &str) -> Option<std::path::PathBuf> {
     (!path.is_empty()).then(|| path.into())
 }
 
+/// Frames handed to a server on the same host through a file in its `shared_frames_dir` (best on a memory file
+/// system such as /dev/shm) instead of inside messages: each frame is written into the next of a ring of
+/// slots and sent as a [`pb::FileSlice`]. A slot is written again only `slots` frames later, so the caller
+/// keeps fewer frames than that waiting for their answers. The file is removed when this is dropped.
+pub struct FrameFile {
+    file: std::fs::File,
+    path: std::path::PathBuf,
+    name: String,
+    slot_bytes: u64,
+    slots: u64,
+    next: u64,
+}
+
+impl FrameFile {
+    /// Creates a new frame file of `slots` slots of `slot_bytes` bytes in `dir`, readable by the owner and
+    /// group only.
+    pub fn create(dir: &std::path::Path, slots: u64, slot_bytes: u64) -> Result<Self> {
+        use std::os::unix::fs::OpenOptionsExt;
+        use std::sync::atomic::{AtomicU64, Ordering};
+        static NEXT: AtomicU64 = AtomicU64::new(0);
+        anyhow::ensure!(
+            slots > 0 && slot_bytes > 0,
+            "a frame file needs at least one slot of at least one byte"
+        );
+        let name = format!(
+            "framewise-{}-{}.frames",
+            std::process::id(),
+            NEXT.fetch_add(1, Ordering::Relaxed)
+        );
+        let path = dir.join(&name);
+        let file = std::fs::OpenOptions::new()
+            .read(true)
+            .write(true)
+            .create_new(true)
+            .mode(0o640)
+            .open(&path)
+            .with_context(|| format!("creating the frame file {}", path.display()))?;
+        let size = slots
+            .checked_mul(slot_bytes)
+            .context("the frame file would be too large")?;
+        file.set_len(size)
+            .with_context(|| format!("sizing the frame file {}", path.display()))?;
+        Ok(Self {
+            file,
+            path,
+            name,
+            slot_bytes,
+            slots,
+            next: 0,
+        })
+    }
+
+    /// The file's name, for the session opening's `frame_file`.
+    pub fn name(&self) -> &str {
+        &self.name
+    }
+
+    /// Writes a frame's bytes into the next slot and returns where they lie.
+    pub fn put(&mut self, data: &[u8]) -> Result<pb::FileSlice> {
+        use std::os::unix::fs::FileExt;
+        let length = data.len() as u64;
+        anyhow::ensure!(
+            length <= self.slot_bytes,
+            "a frame of {length} bytes does not fit a slot of {} bytes",
+            self.slot_bytes
+        );
+        let offset = (self.next % self.slots) * self.slot_bytes;
+        self.file
+            .write_all_at(data, offset)
+            .with_context(|| format!("writing to the frame file {}", self.path.display()))?;
+        self.next += 1;
+        Ok(pb::FileSlice { offset, length })
+    }
+}
+
+impl Drop for FrameFile {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_file(&self.path);
+    }
+}
+
 /// Adds the bearer token, when there is one.
 pub fn with_token<T>(message: T, token: Option<&str>) -> Result<tonic::Request<T>> {
     let mut request = tonic::Request::new(message);

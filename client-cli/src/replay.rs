@@ -407,6 +407,7 @@ pub async fn replay(
                             }
                         };
                         let frame = pb::Frame {
+                            file_slice: None,
                             seq: i as u64,
                             capture_time_us: capture_us(t_ms),
                             format: framewise_server::convert::wire_format(data.format) as i32,

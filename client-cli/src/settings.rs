@@ -154,6 +154,7 @@ impl SessionFlags {
             ),
         };
         Ok(pb::SessionOpening {
+            frame_file: String::new(),
             model: self.model_name.clone(),
             default_format: pb::PixelFormat::Unspecified as i32,
             yuv_matrix: matrix as i32,

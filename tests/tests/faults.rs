@@ -394,6 +394,7 @@ fn phantom_frames(width: u32, height: u32, count: usize, seed: u64) -> Arc<Vec<p
         .map(|_| {
             let view = random_view(&drum, &mut rng);
             pb::Frame {
+                file_slice: None,
                 seq: 0,
                 capture_time_us: 0,
                 format: pb::PixelFormat::Rgb8 as i32,

@@ -4180,6 +4180,7 @@ fn write_seed_corpora() {
         (
             "opening-forward.pb",
             pb::SessionOpening {
+                frame_file: String::new(),
                 model: "phantom-zones".into(),
                 default_format: pb::PixelFormat::Nv12 as i32,
                 yuv_matrix: pb::YuvMatrix::Bt709 as i32,
@@ -4255,6 +4256,7 @@ fn write_seed_corpora() {
     let rgb86 = picture(8, 6);
     let wire_frame = |format: PixelFormat, width, height, stride, data| pb::SessionInput {
         item: Some(pb::session_input::Item::Frame(pb::Frame {
+            file_slice: None,
             seq: 7,
             capture_time_us: 1_000_000,
             format: convert::wire_format(format) as i32,

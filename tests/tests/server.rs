@@ -54,6 +54,7 @@ fn frame_msg(
 ) -> pb::SessionInput {
     pb::SessionInput {
         item: Some(pb::session_input::Item::Frame(pb::Frame {
+            file_slice: None,
             seq,
             capture_time_us: t_us,
             format: framewise_server::convert::wire_format(format) as i32,
@@ -363,6 +364,228 @@ async fn a_unix_socket_gives_the_answers_tcp_gives_and_guards_its_path() {
     t.server.stop().await.expect("stops");
     assert!(!path.exists(), "the socket file is removed at shutdown");
     let _ = std::fs::remove_dir(&dir);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
+    use framewise_cli::client::FrameFile;
+    let dir = std::env::temp_dir().join(format!("framewise-frames-{}", std::process::id()));
+    let shared = dir.join("shared");
+    std::fs::create_dir_all(&shared).expect("temp dir");
+    let path = dir.join("frames.sock");
+    // The settings are checked: frame files need the Unix socket and a directory.
+    let no_socket = ServerConfig {
+        shared_frames_dir: Some(shared.clone()),
+        ..Default::default()
+    };
+    assert!(
+        no_socket.validate().is_err(),
+        "frame files without a Unix socket"
+    );
+    let not_a_dir = ServerConfig {
+        listen_unix: Some(path.clone()),
+        shared_frames_dir: Some(dir.join("missing")),
+        ..Default::default()
+    };
+    assert!(
+        not_a_dir.validate().is_err(),
+        "a directory that is not there"
+    );
+    let t = start(ServerConfig {
+        listen_unix: Some(path.clone()),
+        shared_frames_dir: Some(shared.clone()),
+        ..Default::default()
+    })
+    .await;
+    let unix = format!("unix:{}", path.display());
+    let unix_client = || async {
+        framewise_cli::client::connect(&unix)
+            .await
+            .expect("connects")
+    };
+    let with_file = |name: &str| pb::SessionOpening {
+        frame_file: name.to_string(),
+        ..opening(pb::FramePolicy::EveryFrame)
+    };
+    let (w, h) = (64u32, 48u32);
+    let mut rng = Rng::new(91);
+    let frames: Vec<(PixelFormat, Vec<u8>)> = (0..10)
+        .map(|i| {
+            if i % 2 == 0 {
+                (PixelFormat::Rgb8, noise_frame(&mut rng, w, h))
+            } else {
+                let len = (w * h * 3 / 2) as usize;
+                (
+                    PixelFormat::Nv12,
+                    (0..len).map(|_| rng.below(256) as u8).collect(),
+                )
+            }
+        })
+        .collect();
+    let t_us = |i: usize| 1_000 + i as i64 * 33_000;
+    let inline: Vec<pb::SessionInput> = frames
+        .iter()
+        .enumerate()
+        .map(|(i, (f, d))| frame_msg(i as u64, t_us(i), *f, w, h, d.clone()))
+        .collect();
+    // One slot per frame: every frame is written before the session starts.
+    let mut file =
+        FrameFile::create(&shared, frames.len() as u64, (w * h * 3) as u64).expect("frame file");
+    let by_file: Vec<pb::SessionInput> = frames
+        .iter()
+        .enumerate()
+        .map(|(i, (f, d))| {
+            let mut input = frame_msg(i as u64, t_us(i), *f, w, h, Vec::new());
+            if let Some(pb::session_input::Item::Frame(frame)) = &mut input.item {
+                frame.file_slice = Some(file.put(d).expect("slot"));
+            }
+            input
+        })
+        .collect();
+    let results = |outputs: &[pb::SessionOutput]| -> Vec<(u64, Vec<f32>, Vec<f32>)> {
+        answers(outputs)
+            .iter()
+            .map(|a| match &a.outcome {
+                Some(pb::answer::Outcome::Result(r)) => (a.seq, r.raw.clone(), r.smoothed.clone()),
+                other => panic!("frame {}: {other:?}", a.seq),
+            })
+            .collect()
+    };
+    let expected = results(
+        &converse_on(
+            unix_client().await,
+            opening(pb::FramePolicy::EveryFrame),
+            inline,
+        )
+        .await
+        .expect("inline session"),
+    );
+    let read = results(
+        &converse_on(unix_client().await, with_file(file.name()), by_file)
+            .await
+            .expect("frame-file session"),
+    );
+    assert_eq!(expected.len(), frames.len());
+    // Reference: the same frames sent inline; where the pixels come from must not change a bit.
+    assert_eq!(read, expected);
+
+    // Bad slices get error answers and the session goes on.
+    let good = {
+        let mut input = frame_msg(4, t_us(4), PixelFormat::Rgb8, w, h, Vec::new());
+        if let Some(pb::session_input::Item::Frame(frame)) = &mut input.item {
+            frame.file_slice = Some(pb::FileSlice {
+                offset: 0,
+                length: u64::from(w * h * 3),
+            });
+        }
+        input
+    };
+    let with_slice = |seq: u64, slice: pb::FileSlice, data: Vec<u8>| {
+        let mut input = frame_msg(seq, t_us(seq as usize), PixelFormat::Rgb8, w, h, data);
+        if let Some(pb::session_input::Item::Frame(frame)) = &mut input.item {
+            frame.file_slice = Some(slice);
+        }
+        input
+    };
+    let past_end = pb::FileSlice {
+        offset: u64::from(w * h * 3) * frames.len() as u64 - 10,
+        length: u64::from(w * h * 3),
+    };
+    let huge = pb::FileSlice {
+        offset: 0,
+        length: 1 << 40,
+    };
+    let bad = vec![
+        with_slice(0, past_end, Vec::new()),
+        with_slice(1, huge, Vec::new()),
+        with_slice(
+            2,
+            pb::FileSlice {
+                offset: 0,
+                length: 3,
+            },
+            vec![1, 2, 3],
+        ),
+        good.clone(),
+    ];
+    let outputs = converse_on(unix_client().await, with_file(file.name()), bad)
+        .await
+        .expect("session with bad slices");
+    let got = answers(&outputs);
+    assert_eq!(got.len(), 4);
+    for (a, what) in got[..3]
+        .iter()
+        .zip(["past the end", "larger than", "both data and"])
+    {
+        match &a.outcome {
+            Some(pb::answer::Outcome::Error(e)) => {
+                assert_eq!(e.kind, "bad_file_slice");
+                assert!(e.message.contains(what), "{}", e.message);
+            }
+            other => panic!("frame {}: expected an error, got {other:?}", a.seq),
+        }
+    }
+    assert!(
+        matches!(got[3].outcome, Some(pb::answer::Outcome::Result(_))),
+        "the session goes on"
+    );
+    // A slice in a session that named no frame file.
+    let outputs = converse_on(
+        unix_client().await,
+        opening(pb::FramePolicy::EveryFrame),
+        vec![good.clone()],
+    )
+    .await
+    .expect("session without a frame file");
+    match &answers(&outputs)[0].outcome {
+        Some(pb::answer::Outcome::Error(e)) => {
+            assert!(e.message.contains("named no frame_file"), "{}", e.message)
+        }
+        other => panic!("expected an error, got {other:?}"),
+    }
+
+    // Openings that name a file the server must not open are refused.
+    std::fs::write(dir.join("outside"), b"secret").expect("write");
+    std::os::unix::fs::symlink(dir.join("outside"), shared.join("link")).expect("symlink");
+    for (name, expected) in [
+        ("../outside", "not a plain file name"),
+        ("missing.frames", "no file"),
+        ("link", "not a plain file"),
+    ] {
+        let status = converse_on(unix_client().await, with_file(name), Vec::new())
+            .await
+            .expect_err("refused");
+        assert_eq!(status.code(), tonic::Code::InvalidArgument);
+        assert!(
+            status.message().contains(expected),
+            "{name}: {}",
+            status.message()
+        );
+    }
+    // Over TCP the same opening is refused: frame files are for the host's own processes.
+    let status = converse(&t.url, with_file(file.name()), Vec::new())
+        .await
+        .expect_err("refused over TCP");
+    assert_eq!(status.code(), tonic::Code::InvalidArgument);
+    assert!(
+        status.message().contains("Unix socket"),
+        "{}",
+        status.message()
+    );
+    t.server.stop().await.expect("stops");
+    // A server without a shared frames directory reads no frame files.
+    let plain = start(ServerConfig::default()).await;
+    let status = converse(&plain.url, with_file("x"), Vec::new())
+        .await
+        .expect_err("refused");
+    assert!(
+        status.message().contains("reads no frame files"),
+        "{}",
+        status.message()
+    );
+    plain.server.stop().await.expect("stops");
+    drop(file);
+    let _ = std::fs::remove_dir_all(&dir);
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

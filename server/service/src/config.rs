@@ -31,6 +31,11 @@ pub struct ServerConfig {
     /// Who may connect is set by the socket file's permissions (owner and group, 0660); TLS is not used on
     /// it, the token is. None (the default) for TCP only.
     pub listen_unix: Option<PathBuf>,
+    /// A directory (best on a memory file system such as /dev/shm) where capture processes on this host place
+    /// frame files: a session on the Unix socket names one in its opening and sends only where each frame
+    /// lies in it, so the pixels cross no socket. Only plain files directly inside it are opened. None (the
+    /// default) refuses frame files.
+    pub shared_frames_dir: Option<PathBuf>,
     /// Prometheus text endpoint address; none to turn it off.
     pub metrics_listen: Option<SocketAddr>,
     /// Model package directories to serve besides the embedded demo model.
@@ -105,6 +110,7 @@ impl Default for ServerConfig {
                 .parse()
                 .unwrap_or_else(|_| SocketAddr::from(([127, 0, 0, 1], 50051))),
             listen_unix: None,
+            shared_frames_dir: None,
             metrics_listen: None,
             models: Vec::new(),
             default_model: String::new(),
@@ -170,6 +176,20 @@ impl ServerConfig {
                     path.display()
                 ),
             );
+        }
+        if let Some(dir) = &self.shared_frames_dir {
+            if self.listen_unix.is_none() {
+                return bad(
+                    "shared_frames_dir",
+                    "frame files are read only for sessions on the Unix socket; set listen_unix too".into(),
+                );
+            }
+            if !dir.is_dir() {
+                return bad(
+                    "shared_frames_dir",
+                    format!("`{}` is not a directory", dir.display()),
+                );
+            }
         }
         if self.inference_threads == 0 || self.inference_threads > 256 {
             return bad(

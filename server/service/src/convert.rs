@@ -242,6 +242,8 @@ pub fn wire_settings(plan: &SessionPlan, model_name: &str) -> pb::SessionOpening
         }),
     };
     pb::SessionOpening {
+        // Where frames come from is not a setting of the analysis; the settings echo leaves it out.
+        frame_file: String::new(),
         model: model_name.to_string(),
         default_format: plan
             .default_format

@@ -26,6 +26,9 @@ struct Args {
     /// Also serve on a Unix-domain socket at this path (clients on the same host: `--server unix:PATH`).
     #[arg(long)]
     listen_unix: Option<PathBuf>,
+    /// Directory where clients on the Unix socket may place frame files (best on /dev/shm).
+    #[arg(long)]
+    shared_frames_dir: Option<PathBuf>,
     /// Prometheus text endpoint address (for instance 127.0.0.1:9464).
     #[arg(long)]
     metrics_listen: Option<SocketAddr>,
@@ -105,6 +108,9 @@ fn config_from(args: Args) -> Result<ServerConfig> {
     }
     if args.listen_unix.is_some() {
         config.listen_unix = args.listen_unix;
+    }
+    if args.shared_frames_dir.is_some() {
+        config.shared_frames_dir = args.shared_frames_dir;
     }
     if args.metrics_listen.is_some() {
         config.metrics_listen = args.metrics_listen;

@@ -32,6 +32,8 @@ pub struct Service {
     draining: Arc<AtomicBool>,
     hard_stop: CancellationToken,
     next_id: AtomicU64,
+    shared_frames_dir: Option<std::path::PathBuf>,
+    max_message_bytes: usize,
 }
 
 impl Service {
@@ -59,6 +61,8 @@ impl Service {
             draining,
             hard_stop,
             next_id: AtomicU64::new(1),
+            shared_frames_dir: config.shared_frames_dir.clone(),
+            max_message_bytes: config.max_message_bytes,
         }
     }
 
@@ -78,6 +82,52 @@ impl Service {
                 "this server needs `authorization: Bearer <token>`",
             )),
         }
+    }
+
+    /// Opens the frame file a session's opening names: a plain file directly inside `shared_frames_dir`,
+    /// for a session on the Unix socket only. The file is checked before opening and the opened file is the
+    /// one that was checked (same device and inode), so a swapped-in link is not followed.
+    fn open_frame_file(&self, name: &str, on_unix_socket: bool) -> Result<std::fs::File, String> {
+        use std::os::unix::fs::MetadataExt;
+        let field = "session opening field `frame_file`";
+        let Some(dir) = &self.shared_frames_dir else {
+            return Err(format!(
+                "{field}: this server reads no frame files (its shared_frames_dir is not set)"
+            ));
+        };
+        if !on_unix_socket {
+            return Err(format!(
+                "{field}: frame files are read only for sessions on the server's Unix socket"
+            ));
+        }
+        if name.is_empty()
+            || name.len() > 255
+            || name == "."
+            || name == ".."
+            || name.contains(['/', '\0'])
+        {
+            return Err(format!(
+                "{field}: `{name}` is not a plain file name (no directories, at most 255 bytes)"
+            ));
+        }
+        let path = dir.join(name);
+        let checked = std::fs::symlink_metadata(&path).map_err(|e| {
+            format!("{field}: no file `{name}` in the shared frames directory: {e}")
+        })?;
+        if !checked.file_type().is_file() {
+            return Err(format!("{field}: `{name}` is not a plain file"));
+        }
+        let file = std::fs::File::open(&path)
+            .map_err(|e| format!("{field}: `{name}` could not be opened: {e}"))?;
+        let opened = file
+            .metadata()
+            .map_err(|e| format!("{field}: `{name}` could not be read: {e}"))?;
+        if (opened.dev(), opened.ino()) != (checked.dev(), checked.ino()) {
+            return Err(format!(
+                "{field}: `{name}` changed while it was being opened"
+            ));
+        }
+        Ok(file)
     }
 
     fn refuse(&self, status: Status) -> Status {
@@ -123,6 +173,10 @@ impl FrameAnalysis for Service {
                 self.max_sessions
             )))
         })?;
+        let on_unix_socket = request
+            .extensions()
+            .get::<tonic::transport::server::UdsConnectInfo>()
+            .is_some();
         let mut inbound = request.into_inner();
         let first = tokio::time::timeout(self.idle_timeout, inbound.message())
             .await
@@ -159,6 +213,13 @@ impl FrameAnalysis for Service {
         })?;
         let plan = convert::session_plan(&opening, &model, self.limits)
             .map_err(|e| self.refuse(Status::invalid_argument(e.to_string())))?;
+        let frame_file = match opening.frame_file.as_str() {
+            "" => None,
+            name => Some(Arc::new(
+                self.open_frame_file(name, on_unix_socket)
+                    .map_err(|e| self.refuse(Status::invalid_argument(e)))?,
+            )),
+        };
         let id = format!("s{:06}", self.next_id.fetch_add(1, Ordering::Relaxed));
         let accepted = pb::SessionAccepted {
             session_id: id.clone(),
@@ -189,6 +250,8 @@ impl FrameAnalysis for Service {
             stats: self.stats.clone(),
             idle_timeout: self.idle_timeout,
             hard_stop: self.hard_stop.clone(),
+            frame_file,
+            max_slice_bytes: self.max_message_bytes as u64,
         };
         let open = OpenSession(self.stats.clone());
         tokio::spawn(async move {
