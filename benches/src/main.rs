@@ -4,6 +4,7 @@
 //!   the ONNX Runtime engine and Python onnxruntime (the reference), with 1 and 2 threads.
 //! - `preprocess`: one frame to the 224x224 input tensor, per pixel format and frame size, on framewise's
 //!   SIMD path and on a plain path built from the `image` crate and scalar colour conversion.
+//! - `transport`: the floor under moving a frame, bare TCP loopback and Unix-socket round trips and a copy.
 //! - `overhead`: end-to-end time through a loopback server (one session, every frame) minus the inference
 //!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames.
 //!
@@ -90,6 +91,16 @@ enum Bench {
         #[arg(long, default_value_t = 300)]
         frames: usize,
     },
+    /// The floor under moving a frame: a round trip of `bytes` over bare TCP loopback and a bare Unix socket
+    /// (plain blocking sockets, one byte back; no gRPC, no HTTP/2), and one memory copy of that size.
+    Transport {
+        /// Bytes per round trip (default: a 1920x1080 NV12 frame).
+        #[arg(long, value_delimiter = ',', default_value = "150528,3110400")]
+        bytes: Vec<usize>,
+        /// Round trips per row.
+        #[arg(long, default_value_t = 200)]
+        trips: usize,
+    },
 }
 
 fn main() {
@@ -116,6 +127,7 @@ fn run() -> Result<()> {
             model,
             pause_ms,
         } => throughput(kind, workers, seconds, model, pause_ms)?,
+        Bench::Transport { bytes, trips } => transport(&bytes, trips)?,
         Bench::Overhead { frames } => {
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
@@ -523,6 +535,68 @@ fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<ser
         }
     }
     Ok(json!({"preprocess": rows}))
+}
+
+/// Round trips of `n` bytes over a connected pair of blocking sockets, with a pause between them as between
+/// frames; the peer reads the whole message and answers one byte.
+fn round_trips<S: std::io::Read + std::io::Write + Send + 'static>(
+    mut client: S,
+    mut server: S,
+    n: usize,
+    trips: usize,
+) -> Result<Vec<f64>> {
+    let peer = std::thread::spawn(move || -> std::io::Result<()> {
+        let mut buf = vec![0u8; n];
+        for _ in 0..trips {
+            server.read_exact(&mut buf)?;
+            server.write_all(&[1])?;
+        }
+        Ok(())
+    });
+    let data = vec![7u8; n];
+    let mut out = Vec::with_capacity(trips);
+    for _ in 0..trips {
+        let t = Instant::now();
+        client.write_all(&data)?;
+        client.read_exact(&mut [0u8; 1])?;
+        out.push(t.elapsed().as_secs_f64() * 1000.0);
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    peer.join()
+        .map_err(|_| anyhow::anyhow!("the peer thread panicked"))??;
+    Ok(out)
+}
+
+fn transport(sizes: &[usize], trips: usize) -> Result<serde_json::Value> {
+    let mut rows = Vec::new();
+    println!(
+        "| bytes | bare TCP loopback round trip p50 ms | p99 ms | bare Unix socket round trip p50 ms | p99 ms | one memory copy p50 ms |"
+    );
+    println!("|---|---|---|---|---|---|");
+    for &n in sizes {
+        let listener = std::net::TcpListener::bind("127.0.0.1:0")?;
+        let client = std::net::TcpStream::connect(listener.local_addr()?)?;
+        let (server, _) = listener.accept()?;
+        client.set_nodelay(true)?;
+        server.set_nodelay(true)?;
+        let (tcp50, tcp99) = summary(round_trips(client, server, n, trips)?);
+        let (a, b) = std::os::unix::net::UnixStream::pair()?;
+        let (unix50, unix99) = summary(round_trips(a, b, n, trips)?);
+        let (src, mut dst) = (vec![7u8; n], vec![0u8; n]);
+        let mut copies = Vec::with_capacity(trips);
+        for _ in 0..trips {
+            let t = Instant::now();
+            dst.copy_from_slice(std::hint::black_box(&src));
+            std::hint::black_box(&dst);
+            copies.push(t.elapsed().as_secs_f64() * 1000.0);
+            std::thread::sleep(Duration::from_millis(20));
+        }
+        let (copy50, _) = summary(copies);
+        println!("| {n} | {tcp50:.3} | {tcp99:.3} | {unix50:.3} | {unix99:.3} | {copy50:.3} |");
+        rows.push(json!({"bytes": n, "tcp_p50_ms": tcp50, "tcp_p99_ms": tcp99,
+            "unix_p50_ms": unix50, "unix_p99_ms": unix99, "copy_p50_ms": copy50}));
+    }
+    Ok(json!({"transport": rows}))
 }
 
 async fn overhead(frames: usize) -> Result<serde_json::Value> {

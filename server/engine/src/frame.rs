@@ -564,10 +564,11 @@ pub fn to_rgb(
 }
 
 /// As [`to_rgb`], but when `rows` is given (one flag per row of the region) only the flagged rows need to
-/// be right: an NV12 or I420 frame then converts just those rows and leaves the others as they were in
-/// `out`. The resize reads two rows per output row when it shrinks with bilinear interpolation
+/// be right: a raw frame then converts just those rows and leaves the others as they were in `out`. The
+/// resize reads two rows per output row when it shrinks with bilinear interpolation
 /// ([`crate::preprocess::rows_read`]), so a 1920x1080 frame for a 224x224 input converts 448 of its 1080
-/// rows. Every other format, and a `rows` of the wrong length, converts every row.
+/// rows. PNG and JPEG (decoded whole), a region widened to whole chroma samples, and a `rows` of the wrong
+/// length convert every row.
 pub fn to_rgb_rows(
     frame: &FrameRef<'_>,
     region: Option<Region>,
@@ -689,7 +690,7 @@ fn convert_region(
     let (sx, sy) = frame.format.chroma_steps();
     if sx == 1 && sy == 1 {
         out.reset(region.width, region.height);
-        convert_packed(frame, region, out);
+        convert_packed(frame, region, out, rows);
         return Ok(());
     }
     // Widen to whole chroma samples.
@@ -720,8 +721,9 @@ fn convert_region(
     Ok(())
 }
 
-/// RGB, BGR, RGBA, BGRA and grey to packed RGB.
-fn convert_packed(frame: &Checked<'_>, region: Region, out: &mut RgbImage) {
+/// RGB, BGR, RGBA, BGRA and grey to packed RGB: every row, or only the flagged ones.
+fn convert_packed(frame: &Checked<'_>, region: Region, out: &mut RgbImage, rows: Option<&[bool]>) {
+    let rows = rows.filter(|r| r.len() == region.height as usize);
     let bpp = match frame.format {
         PixelFormat::Rgb8 | PixelFormat::Bgr8 => 3,
         PixelFormat::Rgba8 | PixelFormat::Bgra8 => 4,
@@ -729,6 +731,9 @@ fn convert_packed(frame: &Checked<'_>, region: Region, out: &mut RgbImage) {
     };
     let w = region.width as usize;
     for (row, dst) in out.data.chunks_exact_mut(w * 3).enumerate() {
+        if rows.is_some_and(|r| !r[row]) {
+            continue;
+        }
         let start = (region.y as usize + row) * frame.stride + region.x as usize * bpp;
         let src = &frame.data[start..start + w * bpp];
         match frame.format {
@@ -1044,13 +1049,18 @@ fn convert_yuv(
                 repack(frame.data, stride, 2 * x, y, 2 * w, h, &mut planes.y);
                 &planes.y
             };
-            let image = yuv::YuvPackedImage {
-                yuy: packed,
-                yuy_stride: 2 * w as u32,
-                width: region.width,
-                height: region.height,
-            };
-            yuv::yuyv422_to_rgb(&image, &mut out.data, rgb_stride, range, matrix).map_err(fail)
+            // 4:2:2 has chroma on every row, so runs may start on any row.
+            for (a, b) in row_runs(rows, h) {
+                let image = yuv::YuvPackedImage {
+                    yuy: &packed[a * 2 * w..b * 2 * w],
+                    yuy_stride: 2 * w as u32,
+                    width: region.width,
+                    height: (b - a) as u32,
+                };
+                let out = &mut out.data[a * rgb_stride as usize..b * rgb_stride as usize];
+                yuv::yuyv422_to_rgb(&image, out, rgb_stride, range, matrix).map_err(fail)?;
+            }
+            Ok(())
         }
     }
 }
