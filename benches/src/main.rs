@@ -612,9 +612,9 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
     };
     let mut rows = Vec::new();
     println!(
-        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which transport (outside the server) p50 |"
+        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which hand-over to a worker p50 | of which the rest in the server p50 | of which transport (outside the server) p50 |"
     );
-    println!("|---|---|---|---|---|---|---|---|---|");
+    println!("|---|---|---|---|---|---|---|---|---|---|---|");
     for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
         let options = engine(kind, 1);
         let config = framewise_server::ServerConfig {
@@ -656,22 +656,26 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
                     false => None,
                 };
                 let samples = one_session(url, format, w, h, &data, frames, file.as_mut()).await?;
-                let rtt: Vec<f64> = samples.iter().map(|s| s.0).collect();
-                let inf: Vec<f64> = samples.iter().map(|s| s.1).collect();
-                let over: Vec<f64> = samples.iter().map(|s| s.0 - s.1).collect();
-                let pre: Vec<f64> = samples.iter().map(|s| s.2).collect();
-                let outside: Vec<f64> = samples.iter().map(|s| s.0 - s.3).collect();
-                let ((rtt50, _), (inf50, _), (o50, o99)) =
-                    (summary(rtt), summary(inf), summary(over));
-                let ((pre50, _), (out50, _)) = (summary(pre), summary(outside));
+                let of = |f: fn(&Sample) -> f64| summary(samples.iter().map(f).collect());
+                let ((rtt50, _), (inf50, _), (o50, o99)) = (
+                    of(|s| s.round_trip),
+                    of(|s| s.inference),
+                    of(|s| s.round_trip - s.inference),
+                );
+                let ((pre50, _), (queue50, _)) = (of(|s| s.preprocess), of(|s| s.queue));
+                // The rest in the server: the session's own work (answer, filter, bookkeeping) and the
+                // hand-back from the worker, everything between arrival and hand-off not timed as a stage.
+                let (rest50, _) = of(|s| s.total - s.queue - s.preprocess - s.inference);
+                let (out50, _) = of(|s| s.round_trip - s.total);
                 println!(
-                    "| {kind} | {format} {w}x{h} | {connection} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {out50:.3} |"
+                    "| {kind} | {format} {w}x{h} | {connection} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {queue50:.3} | {rest50:.3} | {out50:.3} |"
                 );
                 rows.push(
                     json!({"engine": kind.to_string(), "format": format.to_string(), "width": w,
                     "height": h, "connection": connection, "round_trip_p50_ms": rtt50,
                     "inference_p50_ms": inf50, "overhead_p50_ms": o50, "overhead_p99_ms": o99,
-                    "preprocess_p50_ms": pre50, "outside_server_p50_ms": out50}),
+                    "preprocess_p50_ms": pre50, "queue_p50_ms": queue50,
+                    "rest_in_server_p50_ms": rest50, "outside_server_p50_ms": out50}),
                 );
             }
         }
@@ -680,10 +684,18 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
     Ok(json!({"overhead": rows}))
 }
 
+/// One frame's times in ms: the client's round trip and the stage timings the server reported.
+struct Sample {
+    round_trip: f64,
+    inference: f64,
+    preprocess: f64,
+    queue: f64,
+    total: f64,
+}
+
 /// One every-frame session: each frame is sent when the previous answer is back, then a pause to the next
 /// 33 ms tick, so no frame queues behind another. With a frame file, each frame is written into it and sent
-/// as a file slice (the writing counts in the round trip). Returns (round trip, server-reported inference,
-/// preprocess, and total in the server), all in ms.
+/// as a file slice (the writing counts in the round trip). Returns one sample per frame after warm-up.
 async fn one_session(
     url: &str,
     format: PixelFormat,
@@ -692,7 +704,7 @@ async fn one_session(
     data: &[prost::bytes::Bytes],
     frames: usize,
     mut frame_file: Option<&mut framewise_cli::client::FrameFile>,
-) -> Result<Vec<(f64, f64, f64, f64)>> {
+) -> Result<Vec<Sample>> {
     // The client's own connection code (TCP or Unix socket, the same HTTP/2 windows as the CLI).
     let mut client = framewise_cli::client::connect(url).await?;
     let (tx, rx) = tokio::sync::mpsc::channel(2);
@@ -746,7 +758,13 @@ async fn one_session(
         let t = r.timings.unwrap_or_default();
         let ms = |us: u64| us as f64 / 1000.0;
         if i >= 10 {
-            out.push((rtt, ms(t.inference_us), ms(t.preprocess_us), ms(t.total_us)));
+            out.push(Sample {
+                round_trip: rtt,
+                inference: ms(t.inference_us),
+                preprocess: ms(t.preprocess_us),
+                queue: ms(t.queue_us),
+                total: ms(t.total_us),
+            });
         }
         let next = Duration::from_micros(33_333 * (i as u64 + 1));
         if let Some(wait) = next.checked_sub(start.elapsed()) {
