@@ -13,8 +13,8 @@ pub const SEND_BUFFER: usize = 4;
 /// Largest message the client sends or accepts: a 4K UHD RGBA frame plus headroom (matches the server's default).
 pub const MAX_MESSAGE_BYTES: usize = 36 * 1024 * 1024;
 
-/// Connects to a server: `http://host:port`, `https://host:port`, or `unix:PATH` for a server's Unix-domain
-/// socket on this host (`listen_unix`), where large frames move about twice as fast as over TCP loopback.
+/// Connects to a server: `http://host:port`, or `unix:PATH` for a server's Unix-domain socket on this host
+/// (`listen_unix`), which moves large frames faster than TCP loopback (BENCHMARKS.md, section 3).
 pub async fn connect(url: &str) -> Result<FrameAnalysisClient<Channel>> {
     let channel = match unix_socket_path(url) {
         Some(path) => {

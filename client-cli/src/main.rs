@@ -41,8 +41,9 @@ enum Command {
 
 #[derive(clap::Args)]
 struct ServerFlags {
-    /// Server URL. `replay` takes several (repeat the flag, or give a host name with several addresses) and
-    /// moves to the next when one fails, re-running the recording from its start there.
+    /// Server URL: `http://host:port`, or `unix:PATH` for a server's Unix socket on this
+    /// host. `replay` takes several (repeat the flag, or give a host name with several addresses) and moves to
+    /// the next when one fails, re-running the recording from its start there.
     #[arg(
         long = "server",
         default_value = "http://127.0.0.1:50051",
