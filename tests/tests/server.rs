@@ -141,6 +141,17 @@ fn answers(outputs: &[pb::SessionOutput]) -> Vec<&pb::Answer> {
         .collect()
 }
 
+/// Each answer's sequence number, raw and smoothed probabilities; every answer must be a result.
+fn results_of(outputs: &[pb::SessionOutput]) -> Vec<(u64, Vec<f32>, Vec<f32>)> {
+    answers(outputs)
+        .iter()
+        .map(|a| match &a.outcome {
+            Some(pb::answer::Outcome::Result(r)) => (a.seq, r.raw.clone(), r.smoothed.clone()),
+            other => panic!("frame {}: {other:?}", a.seq),
+        })
+        .collect()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn every_frame_answers_each_of_1000_frames_once_in_order_with_the_caution() {
     let t = start(ServerConfig::default()).await;
@@ -349,16 +360,7 @@ async fn a_unix_socket_gives_the_answers_tcp_gives_and_guards_its_path() {
     let over_unix = converse_on(unix_client, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("unix session");
-    let results = |outputs: &[pb::SessionOutput]| -> Vec<(u64, Vec<f32>, Vec<f32>)> {
-        answers(outputs)
-            .iter()
-            .map(|a| match &a.outcome {
-                Some(pb::answer::Outcome::Result(r)) => (a.seq, r.raw.clone(), r.smoothed.clone()),
-                other => panic!("frame {}: {other:?}", a.seq),
-            })
-            .collect()
-    };
-    let (tcp, unix) = (results(&over_tcp), results(&over_unix));
+    let (tcp, unix) = (results_of(&over_tcp), results_of(&over_unix));
     assert_eq!(tcp.len(), 12);
     assert_eq!(tcp, unix, "the connection must not change an answer");
     t.server.stop().await.expect("stops");
@@ -442,16 +444,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
             input
         })
         .collect();
-    let results = |outputs: &[pb::SessionOutput]| -> Vec<(u64, Vec<f32>, Vec<f32>)> {
-        answers(outputs)
-            .iter()
-            .map(|a| match &a.outcome {
-                Some(pb::answer::Outcome::Result(r)) => (a.seq, r.raw.clone(), r.smoothed.clone()),
-                other => panic!("frame {}: {other:?}", a.seq),
-            })
-            .collect()
-    };
-    let expected = results(
+    let expected = results_of(
         &converse_on(
             unix_client().await,
             opening(pb::FramePolicy::EveryFrame),
@@ -460,7 +453,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         .await
         .expect("inline session"),
     );
-    let read = results(
+    let read = results_of(
         &converse_on(unix_client().await, with_file(file.name()), by_file)
             .await
             .expect("frame-file session"),

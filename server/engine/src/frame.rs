@@ -1068,16 +1068,19 @@ fn convert_yuv(
 /// The runs of rows to convert, as half-open ranges: all `height` rows at once without `rows`, else the
 /// flagged ones. A 4:2:0 converter pairs the first row it is given with the next under one chroma row, so a
 /// run that starts on an odd row is cut after that row.
-fn row_runs(rows: Option<&[bool]>, height: usize) -> Vec<(usize, usize)> {
-    let Some(rows) = rows else {
-        return vec![(0, height)];
-    };
-    let mut runs = Vec::new();
+fn row_runs(rows: Option<&[bool]>, height: usize) -> impl Iterator<Item = (usize, usize)> {
+    // Without flags, one run of every row; an iterator, so that a steady stream allocates nothing here.
+    let mut whole = rows.is_none().then_some((0, height));
     let mut y = 0;
-    while y < height {
-        if !rows[y] {
+    std::iter::from_fn(move || {
+        let Some(rows) = rows else {
+            return whole.take();
+        };
+        while y < height && !rows[y] {
             y += 1;
-            continue;
+        }
+        if y == height {
+            return None;
         }
         let start = y;
         y += 1;
@@ -1086,9 +1089,8 @@ fn row_runs(rows: Option<&[bool]>, height: usize) -> Vec<(usize, usize)> {
                 y += 1;
             }
         }
-        runs.push((start, y));
-    }
-    runs
+        Some((start, y))
+    })
 }
 
 /// Copies `rows` rows of `row_bytes` bytes, starting at byte `x` of row `y` of a plane with `stride`, into

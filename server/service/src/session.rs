@@ -143,8 +143,8 @@ impl Processor {
                 frame_error("bad_format", message),
             );
         };
-        let slice = arrived.frame.file_slice;
-        let file = match (slice, &self.ctx.frame_file) {
+        // A frame in the session's frame file: its slice and the file, checked before it goes to a worker.
+        let from_file = match (arrived.frame.file_slice, &self.ctx.frame_file) {
             (None, _) => None,
             (Some(_), None) => {
                 self.count_error();
@@ -179,7 +179,7 @@ impl Processor {
                         frame_error("bad_file_slice", message),
                     );
                 }
-                Some(file.clone())
+                Some((s, file.clone()))
             }
         };
         let model = self.ctx.model.clone();
@@ -190,30 +190,29 @@ impl Processor {
         let queued = Instant::now();
         let work = move || {
             let queue_us = pipeline::micros_since(queued);
-            let result = match (slice, file) {
-                (Some(s), Some(file)) => {
-                    // Read on the worker, and counted as preprocessing: the frame's only copy.
-                    let start = Instant::now();
-                    match read_slice(&file, s, &mut buffer) {
-                        Ok(()) => {
-                            let read_us = pipeline::micros_since(start);
-                            let frame_ref = FrameRef {
-                                data: &buffer,
-                                ..frame_ref(&frame, format)
-                            };
-                            pipeline::analyse(&model, &frame_ref, &spec, &mut scratch)
-                                .map(|mut a| {
-                                    a.preprocess_us += read_us;
-                                    a
-                                })
-                                .map_err(|e| (e.kind(), e.to_string()))
-                        }
-                        Err(e) => Err(("bad_file_slice", e)),
-                    }
-                }
-                _ => pipeline::analyse(&model, &frame_ref(&frame, format), &spec, &mut scratch)
-                    .map_err(|e| (e.kind(), e.to_string())),
+            // A frame file's slice is read here, on the worker, and counted as preprocessing: the frame's
+            // only copy.
+            let start = Instant::now();
+            let data = match &from_file {
+                Some((slice, file)) => read_slice(file, *slice, &mut buffer).map(|()| &buffer[..]),
+                None => Ok(&frame.data[..]),
             };
+            let read_us = match from_file {
+                Some(_) => pipeline::micros_since(start),
+                None => 0,
+            };
+            let result = data.map_err(|e| ("bad_file_slice", e)).and_then(|data| {
+                let frame_ref = FrameRef {
+                    data,
+                    ..frame_ref(&frame, format)
+                };
+                pipeline::analyse(&model, &frame_ref, &spec, &mut scratch)
+                    .map(|mut a| {
+                        a.preprocess_us += read_us;
+                        a
+                    })
+                    .map_err(|e| (e.kind(), e.to_string()))
+            });
             (scratch, buffer, queue_us, result)
         };
         let (scratch, buffer, queue_us, result) = match self.ctx.pool.run(work).await {
