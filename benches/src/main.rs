@@ -90,6 +90,15 @@ enum Bench {
         /// Frames per configuration.
         #[arg(long, default_value_t = 300)]
         frames: usize,
+        /// Only these engines (tract, onnxruntime), comma-separated; both when not given.
+        #[arg(long, value_delimiter = ',')]
+        engines: Vec<EngineKind>,
+        /// Only these frames: rgb224 (224x224 RGB), nv12-1080 (1920x1080 NV12); both when not given.
+        #[arg(long, value_delimiter = ',')]
+        kinds: Vec<String>,
+        /// Only these connections: tcp, unix, file (Unix socket and frame file); all when not given.
+        #[arg(long, value_delimiter = ',')]
+        connections: Vec<String>,
     },
     /// The floor under moving a frame: a round trip of `bytes` over bare TCP loopback and a bare Unix socket
     /// (plain blocking sockets, one byte back; no gRPC, no HTTP/2), and one memory copy of that size.
@@ -128,12 +137,17 @@ fn run() -> Result<()> {
             pause_ms,
         } => throughput(kind, workers, seconds, model, pause_ms)?,
         Bench::Transport { bytes, trips } => transport(&bytes, trips)?,
-        Bench::Overhead { frames } => {
+        Bench::Overhead {
+            frames,
+            engines,
+            kinds,
+            connections,
+        } => {
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
                 .enable_all()
                 .build()?;
-            runtime.block_on(overhead(frames))?
+            runtime.block_on(overhead(frames, &engines, &kinds, &connections))?
         }
     };
     if let Some(path) = args.json {
@@ -599,7 +613,23 @@ fn transport(sizes: &[usize], trips: usize) -> Result<serde_json::Value> {
     Ok(json!({"transport": rows}))
 }
 
-async fn overhead(frames: usize) -> Result<serde_json::Value> {
+async fn overhead(
+    frames: usize,
+    engines: &[EngineKind],
+    kinds: &[String],
+    connections: &[String],
+) -> Result<serde_json::Value> {
+    for k in kinds {
+        if !["rgb224", "nv12-1080"].contains(&k.as_str()) {
+            bail!("--kinds {k}: expected rgb224 or nv12-1080");
+        }
+    }
+    for c in connections {
+        if !["tcp", "unix", "file"].contains(&c.as_str()) {
+            bail!("--connections {c}: expected tcp, unix or file");
+        }
+    }
+    let chosen = |list: &[String], name: &str| list.is_empty() || list.iter().any(|l| l == name);
     let (_, bench_dir) = bench_package()?;
     let socket =
         std::env::temp_dir().join(format!("framewise-overhead-{}.sock", std::process::id()));
@@ -616,6 +646,9 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
     );
     println!("|---|---|---|---|---|---|---|---|---|---|---|");
     for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
+        if !engines.is_empty() && !engines.contains(&kind) {
+            continue;
+        }
         let options = engine(kind, 1);
         let config = framewise_server::ServerConfig {
             listen: "127.0.0.1:0".parse()?,
@@ -633,15 +666,28 @@ async fn overhead(frames: usize) -> Result<serde_json::Value> {
         };
         let server = framewise_server::start(config, None).await?;
         let unix = format!("unix:{}", socket.display());
-        let connections = [
-            ("tcp loopback", format!("http://{}", server.addr), false),
-            ("unix socket", unix.clone(), false),
-            ("unix socket + frame file", unix, true),
+        let all = [
+            (
+                "tcp",
+                "tcp loopback",
+                format!("http://{}", server.addr),
+                false,
+            ),
+            ("unix", "unix socket", unix.clone(), false),
+            ("file", "unix socket + frame file", unix, true),
         ];
-        for (format, w, h) in [
-            (PixelFormat::Rgb8, 224u32, 224u32),
-            (PixelFormat::Nv12, 1920, 1080),
+        let connections: Vec<_> = all
+            .into_iter()
+            .filter(|(short, ..)| chosen(connections, short))
+            .map(|(_, name, url, by_file)| (name, url, by_file))
+            .collect();
+        for (short, format, w, h) in [
+            ("rgb224", PixelFormat::Rgb8, 224u32, 224u32),
+            ("nv12-1080", PixelFormat::Nv12, 1920, 1080),
         ] {
+            if !chosen(kinds, short) {
+                continue;
+            }
             let data: Vec<prost::bytes::Bytes> = frames_of(format, w, h, 4)?
                 .into_iter()
                 .map(Into::into)
