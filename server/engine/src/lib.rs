@@ -25,6 +25,7 @@ pub mod pipeline;
 pub mod preprocess;
 pub mod quality;
 pub mod scoring;
+mod vector;
 
 pub use caution::CAUTION;
 pub use engine::{EngineKind, EngineOptions};

@@ -11,6 +11,7 @@ use fast_image_resize as fir;
 
 use crate::frame::{RgbImage, RgbView};
 use crate::manifest::{ColourOrder, InputSpec, Interpolation, Layout, ResizeRule};
+use crate::vector::with_avx2;
 
 /// Where the resized picture sits inside the model's input (the whole input except for letterbox).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -288,9 +289,10 @@ fn area_weights(src: usize, dst: usize, out: &mut Vec<(usize, usize, f32)>) {
     }
 }
 
+with_avx2! {
 /// Writes `(v * scale - mean[c]) / std[c]` into the tensor in the manifest's layout and channel order,
 /// with the letterbox fill around the placed picture.
-fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut Vec<f32>) {
+fn normalise / normalise_plain(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut Vec<f32>) {
     let (tw, th) = (spec.width as usize, spec.height as usize);
     // Every value is written below (fill, then picture), so the buffer is not cleared first.
     tensor.resize(3 * tw * th, 0.0);
@@ -363,15 +365,18 @@ fn normalise(spec: &InputSpec, place: &Placement, picture: &[u8], tensor: &mut V
         }
     }
 }
+}
 
+with_avx2! {
 /// Luma of packed RGB with the BT.601 weights 0.299, 0.587, 0.114 in 15-bit fixed point, as OpenCV 5's
 /// `cv2.cvtColor(..., COLOR_RGB2GRAY)` computes them: `(9798 R + 19235 G + 3735 B + 16384) >> 15`.
-pub fn luma_of(rgb: &[u8], out: &mut Vec<u8>) {
+pub fn luma_of / luma_of_plain(rgb: &[u8], out: &mut Vec<u8>) {
     out.clear();
     out.extend(rgb.chunks_exact(3).map(|p| {
         ((9798 * u32::from(p[0]) + 19235 * u32::from(p[1]) + 3735 * u32::from(p[2]) + 16384) >> 15)
             as u8
     }));
+}
 }
 
 #[cfg(test)]
@@ -436,6 +441,47 @@ mod tests {
         s.layout = Layout::Nhwc;
         normalise(&s, &place, &[0, 51, 102], &mut t);
         assert_eq!(t, vec![1.0, 1.0, 1.0, 0.4, 0.2, 0.0]);
+    }
+
+    /// The AVX2 copy and the baseline copy of normalisation and luma give the same bits (see `vector`), in
+    /// both layouts and colour orders, covered and letterboxed.
+    #[test]
+    fn same_bits_with_and_without_avx2() {
+        for (i, (tw, th, pw, ph, x, y)) in [
+            (224u32, 224u32, 224u32, 224u32, 0u32, 0u32),
+            (96, 96, 96, 60, 0, 18),
+            (31, 17, 20, 17, 5, 0),
+        ]
+        .into_iter()
+        .enumerate()
+        {
+            let picture = crate::vector::noise(i as u64 + 3, (pw * ph * 3) as usize);
+            let place = Placement {
+                x,
+                y,
+                width: pw,
+                height: ph,
+            };
+            for layout in [Layout::Nchw, Layout::Nhwc] {
+                for order in [ColourOrder::Rgb, ColourOrder::Bgr] {
+                    let mut s = spec(ResizeRule::Letterbox, tw, th);
+                    s.layout = layout;
+                    s.colour_order = order;
+                    s.mean = [0.485, 0.456, 0.406];
+                    s.std = [0.229, 0.224, 0.225];
+                    s.letterbox_fill = 114;
+                    let (mut a, mut b) = (vec![7.0f32; 5], Vec::new());
+                    normalise(&s, &place, &picture, &mut a);
+                    normalise_plain(&s, &place, &picture, &mut b);
+                    let bits = |t: &[f32]| t.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+                    assert_eq!(bits(&a), bits(&b), "{tw}x{th} {layout:?} {order:?}");
+                }
+            }
+            let (mut a, mut b) = (Vec::new(), Vec::new());
+            luma_of(&picture, &mut a);
+            luma_of_plain(&picture, &mut b);
+            assert_eq!(a, b);
+        }
     }
 
     /// Converting only the rows `rows_read` flags gives the resize exactly the output of the whole
