@@ -5,10 +5,12 @@
 //! below compiles one Rust body twice, once as it is and once with AVX2 enabled, and picks the AVX2 copy
 //! when the CPU reports AVX2. Both copies are the same source and do the same integer arithmetic and the
 //! same table lookups, so they give the same bits (the tests of the callers run on whichever copy this
-//! machine picks, and `same_bits_with_and_without_avx2` in `quality` and `preprocess` compares the two).
+//! machine picks, and `same_bits_with_and_without_avx2` in `frame`, `preprocess` and `quality` compares the
+//! two).
 
-/// Defines `pub(crate) fn $name($args) -> $ret` running `$body` compiled for AVX2 when the CPU has it, and
-/// `fn $plain` with the same body compiled for the build's baseline, for tests that compare the two.
+/// Defines `fn $name($args) -> $ret` (with the given visibility) running `$body` compiled for AVX2 when the
+/// CPU has it, and a private `fn $plain` with the same body compiled for the build's baseline, which
+/// `$name` falls back to and tests compare with.
 macro_rules! with_avx2 {
     (
         $(#[$meta:meta])*
