@@ -489,17 +489,7 @@ mod tests {
     #[test]
     fn converting_only_the_rows_read_changes_nothing() {
         use crate::frame::{self, DecodeScratch, FrameRef, PixelFormat, Region};
-        let mut state = 0x2545_f491_4f6c_dd1du64;
-        let mut noise = |n: usize| -> Vec<u8> {
-            (0..n)
-                .map(|_| {
-                    state ^= state << 13;
-                    state ^= state >> 7;
-                    state ^= state << 17;
-                    (state >> 24) as u8
-                })
-                .collect()
-        };
+        let mut noise = crate::vector::Noise::new(0x2545_f491_4f6c_dd1d);
         let mut specs = vec![
             spec(ResizeRule::Stretch, 224, 224),
             spec(ResizeRule::CentreCrop, 96, 96),
@@ -528,7 +518,7 @@ mod tests {
                 PixelFormat::Gray8,
             ] {
                 let pixels = w as usize * h as usize;
-                let data = noise(match format {
+                let data = noise.bytes(match format {
                     PixelFormat::Nv12 | PixelFormat::I420 => pixels * 3 / 2,
                     PixelFormat::Yuyv => pixels * 2,
                     PixelFormat::Rgb8 | PixelFormat::Bgr8 => pixels * 3,

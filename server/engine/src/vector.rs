@@ -37,16 +37,32 @@ macro_rules! with_avx2 {
 
 pub(crate) use with_avx2;
 
-/// Deterministic noise bytes (xorshift64) for the tests that compare the two copies.
+/// Deterministic noise bytes (xorshift64) for tests, continuing from call to call.
+#[cfg(test)]
+pub(crate) struct Noise(u64);
+
+#[cfg(test)]
+impl Noise {
+    /// A generator from `seed` (made odd, as xorshift needs a non-zero state).
+    pub(crate) fn new(seed: u64) -> Self {
+        Self(seed | 1)
+    }
+
+    /// The next `n` bytes.
+    pub(crate) fn bytes(&mut self, n: usize) -> Vec<u8> {
+        (0..n)
+            .map(|_| {
+                self.0 ^= self.0 << 13;
+                self.0 ^= self.0 >> 7;
+                self.0 ^= self.0 << 17;
+                (self.0 >> 24) as u8
+            })
+            .collect()
+    }
+}
+
+/// `n` noise bytes from `seed`, for the tests that compare the two copies.
 #[cfg(test)]
 pub(crate) fn noise(seed: u64, n: usize) -> Vec<u8> {
-    let mut state = seed | 1;
-    (0..n)
-        .map(|_| {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            (state >> 24) as u8
-        })
-        .collect()
+    Noise::new(seed).bytes(n)
 }
