@@ -7,8 +7,9 @@
 - the plain Python peer (benches/python-peer/peer.py: grpcio + onnxruntime + OpenCV), the baseline,
 
 all on the MobileNetV2-shaped benchmark network with 224x224 RGB frames, and as a share of the bare engine's
-throughput on the same cores (`framewise-benchmarks throughput`, measured just before and just after each
-server's runs). Prints a Markdown table and writes JSON.
+throughput on the same cores (`framewise-benchmarks throughput`, run for two seconds between the bisection
+steps, so that the best step is compared with the bare rate just before and just after it). Prints a Markdown
+table and writes JSON.
 
 Run from the repository root after `cargo build --release --workspace` and `bash tests/run-all` (which makes
 the benchmark network under target/reference-fixtures):
@@ -18,6 +19,11 @@ the benchmark network under target/reference-fixtures):
 With --pin the server and the bare engine run on one CPU with one worker and the load generator on the other,
 so that the share of bare is measured without the two competing for a core.
 
+With --cpu-wake-latency-us N the script asks Linux that idle CPUs wake within N microseconds for the whole
+run (its CPU latency QoS: /dev/cpu_dma_latency held open with the value written; Linux kernel documentation,
+Documentation/power/pm_qos_interface.rst), the same request framewise-server's `cpu_wake_latency_us` makes.
+Held by the script, it applies alike to every server, the peer and the bare engine.
+
 Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
 confirmed by a qualified clinician; check local regulations before any clinical use.
 """
@@ -26,6 +32,7 @@ import glob
 import json
 import os
 import socket
+import struct
 import subprocess
 import sys
 import time
@@ -36,6 +43,8 @@ MODEL = os.path.join(ROOT, "target", "reference-fixtures", "bench-model")
 SIZE = (224, 224)
 FORMAT = "rgb8"
 P99_LIMIT_MS = 100.0
+# Seconds of bare engine between two bisection steps.
+BARE_STEP_S = 2
 
 
 def free_port():
@@ -96,6 +105,14 @@ def start(kind, sessions):
     return proc, f"http://127.0.0.1:{port}"
 
 
+def cpu_seconds(pid):
+    """CPU time (user + system, all threads) a process has used so far, from /proc/PID/stat."""
+    with open(f"/proc/{pid}/stat") as f:
+        fields = f.read().rsplit(")", 1)[1].split()
+    # After the command name: state is field 3, utime 14 and stime 15 (proc(5)).
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
 def bench(url, sessions, fps, seconds, out):
     cmd = [os.path.join(RELEASE, "framewise"), "bench", "--server", url, "--sessions", str(sessions),
            "--fps", f"{fps:.3f}", "--seconds", str(seconds), "--width", str(SIZE[0]), "--height", str(SIZE[1]),
@@ -111,20 +128,30 @@ def holds(r, total_fps):
             and r["achieved_fps"] >= 0.97 * total_fps)
 
 
-def saturate(kind, sessions, seconds, hi_total, scratch, steps):
-    """Bisection on the total rate; returns (best total fps that held, its report)."""
+def saturate(kind, sessions, seconds, hi_total, scratch, steps, engine):
+    """Bisection on the total rate; returns (best total fps that held, its report, the bare engine's rate
+    around that step). The bare engine runs for BARE_STEP_S between steps (the server idles meanwhile), so each
+    step is compared with the bare rate of the same minute: a shared machine drifts by a third within minutes."""
     proc, url = start(kind, sessions)
     try:
         lo, hi, best = 0.0, hi_total, None
+        bare_rates = [bare(engine, BARE_STEP_S)]
         for step in range(steps):
             total = hi_total * 0.6 if step == 0 else (lo + hi) / 2
+            cpu_before = cpu_seconds(proc.pid)
             r = bench(url, sessions, total / sessions, seconds, os.path.join(scratch, "run.json"))
+            # The server's CPU time per answered frame: what one frame costs it, whatever the queueing.
+            r["server_cpu_ms_per_frame"] = (cpu_seconds(proc.pid) - cpu_before) * 1000 / max(r["results"], 1)
+            bare_rates.append(bare(engine, BARE_STEP_S))
             ok = holds(r, total)
+            around = (bare_rates[-2] + bare_rates[-1]) / 2
             print(f"  {kind:24s} {sessions:2d} sessions {total:7.1f} fps: p99 {r['end_to_end_ms']['p99']:8.1f} ms,"
-                  f" achieved {r['achieved_fps']:6.1f}, failed {r['failed']} -> {'holds' if ok else 'no'}",
+                  f" achieved {r['achieved_fps']:6.1f}, failed {r['failed']}, bare around it {around:6.1f},"
+                  f" server CPU {r['server_cpu_ms_per_frame']:.2f} ms per frame"
+                  f" -> {'holds' if ok else 'no'}",
                   file=sys.stderr, flush=True)
             if ok:
-                lo, best = total, (total, r)
+                lo, best = total, (total, r, around)
             else:
                 hi = total
         return best
@@ -136,10 +163,10 @@ def saturate(kind, sessions, seconds, hi_total, scratch, steps):
             proc.kill()
 
 
-def bare(kind):
+def bare(kind, seconds):
     out = subprocess.run([os.path.join(RELEASE, "framewise-benchmarks"), "throughput", "--engine", kind,
                           "--model", MODEL,
-                          "--workers", "1" if PIN else str(os.cpu_count() or 2), "--seconds", "6"],
+                          "--workers", "1" if PIN else str(os.cpu_count() or 2), "--seconds", str(seconds)],
                          capture_output=True, text=True, check=True, preexec_fn=pinned(PIN and PIN[1]))
     return json.loads(out.stdout.strip().splitlines()[-1])["frames_per_second"]
 
@@ -157,7 +184,17 @@ def main():
     ap.add_argument("--steps", type=int, default=6, help="bisection steps per session count")
     ap.add_argument("--pin", action="store_true",
                     help="server and bare engine on CPU 1 with one worker, load generator on CPU 0")
+    ap.add_argument("--cpu-wake-latency-us", type=int, default=None,
+                    help="hold idle CPUs' wake-up time to this bound for the whole run (0: keep them polling)")
     args = ap.parse_args()
+    wake_hold = None
+    if args.cpu_wake_latency_us is not None:
+        # Kept open until the script ends: closing the device withdraws the request.
+        try:
+            wake_hold = os.open("/dev/cpu_dma_latency", os.O_WRONLY)
+        except OSError as e:
+            sys.exit(f"--cpu-wake-latency-us: cannot open /dev/cpu_dma_latency ({e}); it needs root")
+        os.write(wake_hold, struct.pack("i", args.cpu_wake_latency_us))
     if args.pin:
         if len(os.sched_getaffinity(0)) < 2:
             sys.exit("--pin needs two CPUs")
@@ -168,36 +205,39 @@ def main():
     scratch = os.path.dirname(args.json)
     os.makedirs(scratch, exist_ok=True)
     where = f"CPU {PIN[1]} (load generator on CPU {PIN[0]})" if PIN else f"{os.cpu_count()} cores"
+    print(f"server and bare engine on {where}", file=sys.stderr)
     rows = []
     engines = {"framewise onnxruntime": "onnxruntime", "python peer": "onnxruntime", "framewise tract": "tract"}
     for kind in args.servers.split(","):
         engine = engines[kind]
         for sessions in [int(s) for s in args.sessions.split(",")]:
-            # The bare engine just before and just after, averaged: a shared machine's speed drifts over
-            # minutes, so the share is taken against the bare rate of the same minutes.
-            before = bare(engine)
-            found = saturate(kind, sessions, args.seconds, before * 1.1, scratch, args.steps)
-            after = bare(engine)
-            bare_fps = (before + after) / 2
-            print(f"  bare {engine} on {where}: {before:.1f} before, {after:.1f} after", file=sys.stderr)
-            total, r = found if found else (0.0, None)
+            found = saturate(kind, sessions, args.seconds, bare(engine, BARE_STEP_S) * 1.1, scratch, args.steps,
+                             engine)
+            total, r, bare_fps = found if found else (0.0, None, 0.0)
             rows.append({"server": kind, "sessions": sessions, "max_total_fps": total,
-                         "bare_engine_fps": bare_fps, "bare_before_fps": before, "bare_after_fps": after,
-                         "share_of_bare": total / bare_fps,
+                         "bare_engine_fps": bare_fps,
+                         "share_of_bare": total / bare_fps if bare_fps else 0.0,
                          "p50_ms": r["end_to_end_ms"]["p50"] if r else None,
-                         "p99_ms": r["end_to_end_ms"]["p99"] if r else None})
+                         "p99_ms": r["end_to_end_ms"]["p99"] if r else None,
+                         "server_cpu_ms_per_frame": r["server_cpu_ms_per_frame"] if r else None})
     print("| server | sessions | highest total fps with p99 < 100 ms | p50 ms | p99 ms |"
-          " bare engine fps (before / after) | share of bare |")
-    print("|---|---|---|---|---|---|---|")
+          " bare engine fps around that step | share of bare | server CPU ms per frame |"
+          " frames per CPU-second, share of bare |")
+    print("|---|---|---|---|---|---|---|---|---|")
     for row in rows:
         p50 = f"{row['p50_ms']:.1f}" if row["p50_ms"] is not None else "-"
         p99 = f"{row['p99_ms']:.1f}" if row["p99_ms"] is not None else "-"
+        # With one worker the bare engine uses one CPU-second per second, so frames per CPU-second over the
+        # bare rate is the share a server would reach if nothing but its own work slowed it.
+        cpu = row["server_cpu_ms_per_frame"]
+        cpu_ms = f"{cpu:.2f}" if cpu else "-"
+        cpu_share = f"{1000 / cpu / row['bare_engine_fps']:.2f}" if cpu and row["bare_engine_fps"] and PIN else "-"
         print(f"| {row['server']} | {row['sessions']} | {row['max_total_fps']:.1f} | {p50} | {p99} |"
-              f" {row['bare_engine_fps']:.1f} ({row['bare_before_fps']:.1f} / {row['bare_after_fps']:.1f}) |"
-              f" {row['share_of_bare']:.2f} |")
+              f" {row['bare_engine_fps']:.1f} |"
+              f" {row['share_of_bare']:.2f} | {cpu_ms} | {cpu_share} |")
     with open(args.json, "w") as f:
         json.dump({"caution": "Decision support only, not a diagnosis.", "p99_limit_ms": P99_LIMIT_MS,
-                   "pinned": PIN, "rows": rows}, f, indent=2)
+                   "pinned": PIN, "cpu_wake_latency_us": args.cpu_wake_latency_us, "rows": rows}, f, indent=2)
 
 
 if __name__ == "__main__":

@@ -99,6 +99,10 @@ enum Bench {
         /// Only these connections: tcp, unix, file (Unix socket and frame file); all when not given.
         #[arg(long, value_delimiter = ',')]
         connections: Vec<String>,
+        /// The server's `cpu_wake_latency_us`: hold idle CPUs' wake-up time to this many microseconds
+        /// during the run (0: keep them polling; needs write access to /dev/cpu_dma_latency).
+        #[arg(long)]
+        cpu_wake_latency_us: Option<u32>,
     },
     /// The floor under moving a frame: a round trip of `bytes` over bare TCP loopback and a bare Unix socket
     /// (plain blocking sockets, one byte back; no gRPC, no HTTP/2), and one memory copy of that size.
@@ -142,12 +146,19 @@ fn run() -> Result<()> {
             engines,
             kinds,
             connections,
+            cpu_wake_latency_us,
         } => {
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
                 .enable_all()
                 .build()?;
-            runtime.block_on(overhead(frames, &engines, &kinds, &connections))?
+            runtime.block_on(overhead(
+                frames,
+                &engines,
+                &kinds,
+                &connections,
+                cpu_wake_latency_us,
+            ))?
         }
     };
     if let Some(path) = args.json {
@@ -618,6 +629,7 @@ async fn overhead(
     engines: &[EngineKind],
     kinds: &[String],
     connections: &[String],
+    cpu_wake_latency_us: Option<u32>,
 ) -> Result<serde_json::Value> {
     for k in kinds {
         if !["rgb224", "nv12-1080"].contains(&k.as_str()) {
@@ -662,6 +674,7 @@ async fn overhead(
             }],
             engine: kind,
             onnxruntime_library: options.onnxruntime_library.clone(),
+            cpu_wake_latency_us,
             ..Default::default()
         };
         let server = framewise_server::start(config, None).await?;
@@ -727,7 +740,7 @@ async fn overhead(
         }
         server.stop().await?;
     }
-    Ok(json!({"overhead": rows}))
+    Ok(json!({"overhead": rows, "cpu_wake_latency_us": cpu_wake_latency_us}))
 }
 
 /// One frame's times in ms: the client's round trip and the stage timings the server reported.

@@ -1110,3 +1110,80 @@ async fn a_server_on_the_onnxruntime_engine_says_so_in_every_answer_and_matches_
     }
     server.stop().await.expect("stops");
 }
+
+/// The effective CPU latency bound: reading the device gives the aggregated request as a native-endian s32
+/// (Linux kernel documentation, Documentation/power/pm_qos_interface.rst; with no request it is the kernel's
+/// default of 2,000 seconds).
+fn effective_cpu_latency_us() -> Option<i32> {
+    let bytes = std::fs::read(framewise_server::wake::CPU_LATENCY_DEVICE).ok()?;
+    Some(i32::from_ne_bytes(bytes.get(..4)?.try_into().ok()?))
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_wake_latency_bound_is_held_while_the_server_runs_and_released_when_it_stops() {
+    let device = std::path::Path::new(framewise_server::wake::CPU_LATENCY_DEVICE);
+    let writable = std::fs::OpenOptions::new().write(true).open(device).is_ok();
+    let config = ServerConfig {
+        listen: "127.0.0.1:0".parse().expect("addr"),
+        cpu_wake_latency_us: Some(0),
+        ..ServerConfig::default()
+    };
+    let registry = ModelRegistry::new(vec![demo_model()]);
+    if !writable {
+        // Without access the server refuses to start and says why, rather than run without the bound.
+        eprintln!(
+            "{} is not writable here: checking the refusal",
+            device.display()
+        );
+        let Err(err) = framewise_server::start(config, Some(registry)).await else {
+            panic!("the server started without the device");
+        };
+        let text = format!("{err:#}");
+        assert!(text.contains("cpu_wake_latency_us = 0"), "{text}");
+        assert!(text.contains("write access"), "{text}");
+        return;
+    }
+    let before = effective_cpu_latency_us().expect("the device reads");
+    let server = framewise_server::start(config, Some(registry))
+        .await
+        .expect("server starts");
+    assert_eq!(
+        effective_cpu_latency_us(),
+        Some(0),
+        "the server holds the bound while it runs"
+    );
+    let url = format!("http://{}", server.addr);
+    let mut rng = Rng::new(11);
+    let inputs = (0..3)
+        .map(|i| {
+            frame_msg(
+                i,
+                i as i64 * 33_333,
+                PixelFormat::Rgb8,
+                32,
+                24,
+                noise_frame(&mut rng, 32, 24),
+            )
+        })
+        .collect();
+    let outputs = converse(&url, opening(pb::FramePolicy::EveryFrame), inputs)
+        .await
+        .expect("session runs");
+    assert_eq!(answers(&outputs).len(), 3);
+    server.stop().await.expect("server stops");
+    assert_eq!(
+        effective_cpu_latency_us(),
+        Some(before),
+        "the request is withdrawn when the server stops"
+    );
+}
+
+#[test]
+fn a_wake_latency_bound_out_of_range_is_refused() {
+    let config = ServerConfig {
+        cpu_wake_latency_us: Some(framewise_server::wake::MAX_WAKE_LATENCY_US + 1),
+        ..ServerConfig::default()
+    };
+    let err = config.validate().expect_err("out of range");
+    assert_eq!(err.field, "cpu_wake_latency_us");
+}

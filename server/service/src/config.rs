@@ -75,6 +75,13 @@ pub struct ServerConfig {
     pub token: Option<String>,
     /// Allow plaintext on a non-loopback address (off: the server refuses).
     pub allow_insecure_remote: bool,
+    /// While the server runs, ask Linux that idle CPUs wake within this many microseconds (its CPU latency
+    /// QoS, `/dev/cpu_dma_latency`; 0 keeps idle CPUs polling). Every frame wakes threads on other CPUs
+    /// several times, and a sleeping CPU makes each wake-up slower: on the development VM this took a
+    /// 224x224 frame's service overhead from 0.66 to about 0.5 ms (BENCHMARKS.md section 3). It costs power,
+    /// and needs write access to the device (root's by default); the server refuses to start without it. None
+    /// (the default) leaves the system's setting alone.
+    pub cpu_wake_latency_us: Option<u32>,
 }
 
 /// One model package to load.
@@ -130,6 +137,7 @@ impl Default for ServerConfig {
             tls: None,
             token: None,
             allow_insecure_remote: false,
+            cpu_wake_latency_us: None,
         }
     }
 }
@@ -228,6 +236,17 @@ impl ServerConfig {
             && token.len() < 16
         {
             return bad("token", "must be at least 16 characters".into());
+        }
+        if let Some(us) = self.cpu_wake_latency_us
+            && us > crate::wake::MAX_WAKE_LATENCY_US
+        {
+            return bad(
+                "cpu_wake_latency_us",
+                format!(
+                    "is {us}; it must be from 0 to {} microseconds",
+                    crate::wake::MAX_WAKE_LATENCY_US
+                ),
+            );
         }
         if !self.demo_model && self.models.is_empty() {
             return bad(

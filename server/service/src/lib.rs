@@ -6,6 +6,7 @@
 //! - [`pool`]: CPU worker threads for decoding, preprocessing and inference, off the async runtime.
 //! - [`service`] and [`session`]: admission, frame policies and answers; [`convert`] maps the wire types.
 //! - [`stats`] and [`metrics`]: counters, latency histograms and the Prometheus text endpoint.
+//! - [`wake`]: the optional hold on idle CPUs' wake-up time.
 //!
 //! [`start`] runs the whole server on a listener, so tests start the real thing on `127.0.0.1:0`.
 
@@ -17,6 +18,7 @@ pub mod registry;
 pub mod service;
 pub mod session;
 pub mod stats;
+pub mod wake;
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
@@ -87,6 +89,15 @@ impl RunningServer {
 /// Loads the models (unless given), binds, and serves until shut down.
 pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Result<RunningServer> {
     config.validate()?;
+    // Held until the server task ends, so the request lasts exactly as long as the server serves.
+    let wake_hold = match config.cpu_wake_latency_us {
+        Some(us) => {
+            let hold = wake::CpuWakeHold::hold(Path::new(wake::CPU_LATENCY_DEVICE), us)?;
+            tracing::info!(microseconds = us, device = %hold.device().display(), "holding idle CPUs' wake-up time");
+            Some(hold)
+        }
+        None => None,
+    };
     let registry = match registry {
         Some(r) => r,
         None => {
@@ -216,6 +227,7 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     let task = {
         let (shutdown, stats) = (shutdown.clone(), stats.clone());
         tokio::spawn(async move {
+            let _wake_hold = wake_hold;
             let serving = tokio::spawn(serve);
             shutdown.cancelled().await;
             tracing::info!("shutting down: NOT_SERVING, no new sessions");
