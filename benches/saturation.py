@@ -128,14 +128,15 @@ def holds(r, total_fps):
             and r["achieved_fps"] >= 0.97 * total_fps)
 
 
-def saturate(kind, sessions, seconds, hi_total, scratch, steps, engine):
+def saturate(kind, sessions, seconds, scratch, steps, engine):
     """Bisection on the total rate; returns (best total fps that held, its report, the bare engine's rate
     around that step). The bare engine runs for BARE_STEP_S between steps (the server idles meanwhile), so each
     step is compared with the bare rate of the same minute: a shared machine drifts by a third within minutes."""
     proc, url = start(kind, sessions)
     try:
-        lo, hi, best = 0.0, hi_total, None
         bare_rates = [bare(engine, BARE_STEP_S)]
+        hi_total = bare_rates[0] * 1.1
+        lo, hi, best = 0.0, hi_total, None
         for step in range(steps):
             total = hi_total * 0.6 if step == 0 else (lo + hi) / 2
             cpu_before = cpu_seconds(proc.pid)
@@ -211,8 +212,7 @@ def main():
     for kind in args.servers.split(","):
         engine = engines[kind]
         for sessions in [int(s) for s in args.sessions.split(",")]:
-            found = saturate(kind, sessions, args.seconds, bare(engine, BARE_STEP_S) * 1.1, scratch, args.steps,
-                             engine)
+            found = saturate(kind, sessions, args.seconds, scratch, args.steps, engine)
             total, r, bare_fps = found if found else (0.0, None, 0.0)
             rows.append({"server": kind, "sessions": sessions, "max_total_fps": total,
                          "bare_engine_fps": bare_fps,

@@ -78,7 +78,7 @@ pub struct ServerConfig {
     /// While the server runs, ask Linux that idle CPUs wake within this many microseconds (its CPU latency
     /// QoS, `/dev/cpu_dma_latency`; 0 keeps idle CPUs polling). Every frame wakes threads on other CPUs
     /// several times, and a sleeping CPU makes each wake-up slower: on the development VM this took a
-    /// 224x224 frame's service overhead from 0.66 to about 0.5 ms (BENCHMARKS.md section 3). It costs power,
+    /// 224x224 frame's service overhead p50 from 0.71–0.82 to 0.51–0.69 ms (BENCHMARKS.md section 3). It costs power,
     /// and needs write access to the device (root's by default); the server refuses to start without it. None
     /// (the default) leaves the system's setting alone.
     pub cpu_wake_latency_us: Option<u32>,
