@@ -24,6 +24,12 @@ run (its CPU latency QoS: /dev/cpu_dma_latency held open with the value written;
 Documentation/power/pm_qos_interface.rst), the same request framewise-server's `cpu_wake_latency_us` makes.
 Held by the script, it applies alike to every server, the peer and the bare engine.
 
+When both the ONNX Runtime engine and the peer are measured, each session count ends with equal-load runs:
+both servers are fed the same total rate for --equal-runs rounds, alternating, so that their p50 and p99 are
+compared on the same load (the ratio is of the median p99 over the rounds, so that one stall of the host in
+one round does not decide it). The rates are --equal-loads fractions of the lower of the two servers' highest
+rates (which both held): 1.0 is the slower server's limit, 0.8 a load both carry with room to spare.
+
 Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
 confirmed by a qualified clinician; check local regulations before any clinical use.
 """
@@ -157,11 +163,40 @@ def saturate(kind, sessions, seconds, scratch, steps, engine):
                 hi = total
         return best
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        stop(proc)
+
+
+def equal_load(sessions, total, seconds, scratch, runs):
+    """framewise (ONNX Runtime engine) and the peer fed the same total rate, alternating, `runs` rounds each.
+    Returns {kind: [(p50, p99, achieved, failed), ...]}."""
+    out = {"framewise onnxruntime": [], "python peer": []}
+    for _ in range(runs):
+        for kind in out:
+            proc, url = start(kind, sessions)
+            try:
+                r = bench(url, sessions, total / sessions, seconds, os.path.join(scratch, "equal.json"))
+            finally:
+                stop(proc)
+            e = r["end_to_end_ms"]
+            out[kind].append((e["p50"], e["p99"], r["achieved_fps"], r["failed"]))
+            print(f"  equal load {sessions:2d} sessions {total:7.1f} fps: {kind:22s} p50 {e['p50']:6.1f} ms,"
+                  f" p99 {e['p99']:6.1f} ms, achieved {r['achieved_fps']:6.1f}, failed {r['failed']}",
+                  file=sys.stderr, flush=True)
+    return out
+
+
+def median(values):
+    v = sorted(values)
+    mid = len(v) // 2
+    return v[mid] if len(v) % 2 else (v[mid - 1] + v[mid]) / 2
+
+
+def stop(proc):
+    proc.terminate()
+    try:
+        proc.wait(timeout=20)
+    except subprocess.TimeoutExpired:
+        proc.kill()
 
 
 def bare(kind, seconds):
@@ -187,6 +222,10 @@ def main():
                     help="server and bare engine on CPU 1 with one worker, load generator on CPU 0")
     ap.add_argument("--cpu-wake-latency-us", type=int, default=None,
                     help="hold idle CPUs' wake-up time to this bound for the whole run (0: keep them polling)")
+    ap.add_argument("--equal-runs", type=int, default=3,
+                    help="rounds of the equal-load comparison of framewise and the peer (0: none)")
+    ap.add_argument("--equal-loads", default="1.0,0.8",
+                    help="equal loads as fractions of the lower of the two servers' highest rates")
     args = ap.parse_args()
     wake_hold = None
     if args.cpu_wake_latency_us is not None:
@@ -209,9 +248,12 @@ def main():
     print(f"server and bare engine on {where}", file=sys.stderr)
     rows = []
     engines = {"framewise onnxruntime": "onnxruntime", "python peer": "onnxruntime", "framewise tract": "tract"}
-    for kind in args.servers.split(","):
-        engine = engines[kind]
-        for sessions in [int(s) for s in args.sessions.split(",")]:
+    servers = args.servers.split(",")
+    compare = args.equal_runs > 0 and "framewise onnxruntime" in servers and "python peer" in servers
+    equal_rows = []
+    for sessions in [int(s) for s in args.sessions.split(",")]:
+        for kind in servers:
+            engine = engines[kind]
             found = saturate(kind, sessions, args.seconds, scratch, args.steps, engine)
             total, r, bare_fps = found if found else (0.0, None, 0.0)
             rows.append({"server": kind, "sessions": sessions, "max_total_fps": total,
@@ -220,6 +262,15 @@ def main():
                          "p50_ms": r["end_to_end_ms"]["p50"] if r else None,
                          "p99_ms": r["end_to_end_ms"]["p99"] if r else None,
                          "server_cpu_ms_per_frame": r["server_cpu_ms_per_frame"] if r else None})
+        if compare:
+            held = [row["max_total_fps"] for row in rows[-len(servers):]
+                    if row["server"] in ("framewise onnxruntime", "python peer")]
+            for fraction in [float(f) for f in args.equal_loads.split(",")]:
+                common = min(held) * fraction
+                if common > 0:
+                    runs = equal_load(sessions, common, args.seconds, scratch, args.equal_runs)
+                    equal_rows.append({"sessions": sessions, "fraction": fraction, "total_fps": common,
+                                       "runs": runs})
     print("| server | sessions | highest total fps with p99 < 100 ms | p50 ms | p99 ms |"
           " bare engine fps around that step | share of bare | server CPU ms per frame |"
           " frames per CPU-second, share of bare |")
@@ -235,9 +286,23 @@ def main():
         print(f"| {row['server']} | {row['sessions']} | {row['max_total_fps']:.1f} | {p50} | {p99} |"
               f" {row['bare_engine_fps']:.1f} |"
               f" {row['share_of_bare']:.2f} | {cpu_ms} | {cpu_share} |")
+    if equal_rows:
+        print()
+        print("| sessions | load | total fps, both servers | framewise p50 ms | framewise p99 ms | peer p50 ms |"
+              " peer p99 ms | median p99, framewise / peer |")
+        print("|---|---|---|---|---|---|---|---|")
+        for row in equal_rows:
+            fw, peer = row["runs"]["framewise onnxruntime"], row["runs"]["python peer"]
+            # A run marked * did not hold the load (a frame failed, or under 97 % of the rate was achieved).
+            mark = lambda run: "" if run[3] == 0 and run[2] >= 0.97 * row["total_fps"] else "*"
+            cell = lambda runs, i: " / ".join(f"{run[i]:.1f}{mark(run) if i == 1 else ''}" for run in runs)
+            ratio = median([run[1] for run in fw]) / median([run[1] for run in peer])
+            print(f"| {row['sessions']} | {row['fraction']:.2f} | {row['total_fps']:.1f} | {cell(fw, 0)} | {cell(fw, 1)} |"
+                  f" {cell(peer, 0)} | {cell(peer, 1)} | {ratio:.2f} |")
     with open(args.json, "w") as f:
         json.dump({"caution": "Decision support only, not a diagnosis.", "p99_limit_ms": P99_LIMIT_MS,
-                   "pinned": PIN, "cpu_wake_latency_us": args.cpu_wake_latency_us, "rows": rows}, f, indent=2)
+                   "pinned": PIN, "cpu_wake_latency_us": args.cpu_wake_latency_us, "rows": rows,
+                   "equal_load": equal_rows}, f, indent=2)
 
 
 if __name__ == "__main__":
