@@ -8,6 +8,9 @@
 //! - `overhead`: end-to-end time through a loopback server (one session, every frame) minus the inference
 //!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames.
 //!
+//! - `ops`: where an inference's time goes on the MobileNetV2-shaped network, by kind of layer, for tract
+//!   (its plan timed node by node) and Python onnxruntime (its own profiler).
+//!
 //! Saturation and the Python peer are measured by `benches/saturation.py` with `framewise bench`.
 //!
 //! Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
@@ -104,6 +107,13 @@ enum Bench {
         #[arg(long)]
         cpu_wake_latency_us: Option<u32>,
     },
+    /// Where an inference's time goes, by kind of layer: tract's plan timed node by node beside Python
+    /// onnxruntime's profiler, one thread each, on the MobileNetV2-shaped network.
+    Ops {
+        /// Frames timed per runtime.
+        #[arg(long, default_value_t = 100)]
+        frames: usize,
+    },
     /// The floor under moving a frame: a round trip of `bytes` over bare TCP loopback and a bare Unix socket
     /// (plain blocking sockets, one byte back; no gRPC, no HTTP/2), and one memory copy of that size.
     Transport {
@@ -141,6 +151,7 @@ fn run() -> Result<()> {
             pause_ms,
         } => throughput(kind, workers, seconds, model, pause_ms)?,
         Bench::Transport { bytes, trips } => transport(&bytes, trips)?,
+        Bench::Ops { frames } => ops(frames)?,
         Bench::Overhead {
             frames,
             engines,
@@ -261,6 +272,141 @@ fn python_reference(onnx: &Path, threads: usize, frames: usize) -> Result<(f64, 
         v["median_ms"].as_f64().unwrap_or(f64::NAN),
         v["p99_ms"].as_f64().unwrap_or(f64::NAN),
     ))
+}
+
+/// The kind of layer an optimised graph's node belongs to: that of the longest ONNX node or tensor name the
+/// node's name starts with (followed by anything but a letter or digit, so that `conv_1` is not taken for
+/// `conv_12`), or `unmatched` when none does.
+fn layer_kind<'a>(
+    node: &str,
+    kinds: &'a serde_json::Map<String, serde_json::Value>,
+    unmatched: &'a str,
+) -> &'a str {
+    kinds
+        .iter()
+        .filter(|(name, _)| {
+            node.strip_prefix(name.as_str())
+                .is_some_and(|rest| !rest.starts_with(|c: char| c.is_ascii_alphanumeric()))
+        })
+        .max_by_key(|(name, _)| name.len())
+        .and_then(|(_, kind)| kind.as_str())
+        .unwrap_or(unmatched)
+}
+
+fn ops(frames: usize) -> Result<serde_json::Value> {
+    let (bench, bench_dir) = bench_package()?;
+    let onnx = bench_dir.join(&bench.manifest.file);
+    let script = framewise_tests::workspace_root().join("benches/reference_ops.py");
+    let out = Command::new(framewise_tests::python())
+        .arg(&script)
+        .args(["--model".as_ref(), onnx.as_os_str()])
+        .args(["--frames", &frames.to_string()])
+        .output()
+        .context("running benches/reference_ops.py")?;
+    if !out.status.success() {
+        bail!(
+            "reference_ops.py failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let reference: serde_json::Value = serde_json::from_slice(&out.stdout)?;
+    let empty = serde_json::Map::new();
+    let kinds = reference["layer_kinds"].as_object().unwrap_or(&empty);
+    let ort_nodes = reference["nodes"].as_object().unwrap_or(&empty);
+
+    let model = Model::load_with(&bench, None, &engine(EngineKind::Tract, 1))?;
+    let mut rng = SplitMix64::new(3);
+    let input: Vec<f32> = (0..model.input_len())
+        .map(|_| rng.below(1000) as f32 / 1000.0)
+        .collect();
+    for _ in 0..5 {
+        model.infer(&input)?;
+    }
+    let tract_nodes = model
+        .node_times(&input, frames)?
+        .context("tract gave no node times")?;
+
+    // kind -> (onnxruntime µs, its nodes, tract µs, its nodes), in the order kinds first appear.
+    let mut table: Vec<Row> = Vec::new();
+    type Row = (String, f64, usize, f64, usize);
+    fn row<'t>(table: &'t mut Vec<Row>, kind: &str) -> &'t mut Row {
+        let i = match table.iter().position(|r| r.0 == kind) {
+            Some(i) => i,
+            None => {
+                table.push((kind.to_string(), 0.0, 0, 0.0, 0));
+                table.len() - 1
+            }
+        };
+        &mut table[i]
+    }
+    const OWN: &str = "the runtime's own nodes (layout changes)";
+    let mut ort_ops = std::collections::BTreeMap::<String, f64>::new();
+    for (name, node) in ort_nodes {
+        let us = node["us"].as_f64().unwrap_or(0.0);
+        let r = row(&mut table, layer_kind(name, kinds, OWN));
+        r.1 += us;
+        r.2 += 1;
+        *ort_ops
+            .entry(node["op"].as_str().unwrap_or("?").to_string())
+            .or_default() += us;
+    }
+    let mut tract_ops = std::collections::BTreeMap::<String, f64>::new();
+    for node in &tract_nodes {
+        let r = row(&mut table, layer_kind(&node.name, kinds, OWN));
+        r.3 += node.micros;
+        r.4 += 1;
+        *tract_ops.entry(node.op.clone()).or_default() += node.micros;
+    }
+    let (ort_total, tract_total) = table
+        .iter()
+        .fold((0.0, 0.0), |(a, b), r| (a + r.1, b + r.3));
+    println!(
+        "| kind of layer | Python onnxruntime ms | its nodes | tract ms | its nodes | tract / onnxruntime | share of tract's time |"
+    );
+    println!("|---|---|---|---|---|---|---|");
+    let mut rows = Vec::new();
+    for (kind, ort_us, ort_n, tract_us, tract_n) in &table {
+        let ratio = if *ort_us > 0.0 {
+            format!("{:.2}", tract_us / ort_us)
+        } else {
+            "-".into()
+        };
+        println!(
+            "| {kind} | {:.3} | {ort_n} | {:.3} | {tract_n} | {ratio} | {:.0} % |",
+            ort_us / 1000.0,
+            tract_us / 1000.0,
+            100.0 * tract_us / tract_total.max(f64::MIN_POSITIVE)
+        );
+        rows.push(
+            json!({"kind": kind, "onnxruntime_ms": ort_us / 1000.0, "onnxruntime_nodes": ort_n,
+            "tract_ms": tract_us / 1000.0, "tract_nodes": tract_n}),
+        );
+    }
+    println!(
+        "| all nodes | {:.3} | {} | {:.3} | {} | {:.2} | 100 % |",
+        ort_total / 1000.0,
+        ort_nodes.len(),
+        tract_total / 1000.0,
+        tract_nodes.len(),
+        tract_total / ort_total.max(f64::MIN_POSITIVE)
+    );
+    let by_op = |ops: &std::collections::BTreeMap<String, f64>| {
+        let mut v: Vec<_> = ops.iter().collect();
+        v.sort_by(|a, b| b.1.total_cmp(a.1));
+        v.iter()
+            .map(|(op, us)| format!("{op} {:.3} ms", *us / 1000.0))
+            .collect::<Vec<_>>()
+            .join(", ")
+    };
+    println!();
+    println!("Operators, Python onnxruntime: {}", by_op(&ort_ops));
+    println!("Operators, tract: {}", by_op(&tract_ops));
+    Ok(
+        json!({"ops": {"frames": frames, "reference": reference["engine"], "kinds": rows,
+        "onnxruntime_operators_ms": ort_ops.iter().map(|(k, v)| (k.clone(), v / 1000.0)).collect::<std::collections::BTreeMap<_, _>>(),
+        "tract_operators_ms": tract_ops.iter().map(|(k, v)| (k.clone(), v / 1000.0)).collect::<std::collections::BTreeMap<_, _>>(),
+        "tract_nodes": tract_nodes.iter().map(|n| json!({"name": n.name, "op": n.op, "ms": n.micros / 1000.0})).collect::<Vec<_>>()}}),
+    )
 }
 
 fn inference(frames: usize) -> Result<serde_json::Value> {

@@ -228,3 +228,65 @@ fn a_model_with_an_operator_the_engine_cannot_run_is_refused_naming_node_and_ope
         "{text}"
     );
 }
+
+#[test]
+fn node_times_cover_the_graphs_nodes_and_leave_inference_unchanged() {
+    use framewise_engine::{EngineKind, EngineOptions};
+    use prost::Message;
+    let package = ModelPackage::from_parts(
+        framewise_models_demo::package::DEMO_MANIFEST,
+        framewise_models_demo::package::DEMO_ONNX,
+    )
+    .expect("demo package");
+    let model = Model::load(&package, None).expect("tract loads the demo model");
+    let input: Vec<f32> = (0..model.input_len())
+        .map(|i| (i % 97) as f32 / 97.0)
+        .collect();
+    let before = model.infer(&input).expect("inference");
+    let times = model
+        .node_times(&input, 3)
+        .expect("node times")
+        .expect("tract times its nodes");
+    assert!(!times.is_empty());
+    assert!(times.iter().all(|t| t.micros.is_finite() && t.micros > 0.0));
+    // Every convolution of the ONNX graph is run by at least one plan node that carries its name.
+    let proto = tract_onnx::pb::ModelProto::decode(framewise_models_demo::package::DEMO_ONNX)
+        .expect("demo ONNX decodes");
+    let graph = proto.graph.expect("graph");
+    let convs: Vec<&str> = graph
+        .node
+        .iter()
+        .filter(|n| n.op_type == "Conv")
+        .map(|n| n.name.as_str())
+        .collect();
+    assert!(!convs.is_empty());
+    for conv in convs {
+        assert!(
+            times.iter().any(|t| t
+                .name
+                .strip_prefix(conv)
+                .is_some_and(|rest| !rest.starts_with(|c: char| c.is_ascii_alphanumeric()))),
+            "no timed node for {conv}: {:?}",
+            times.iter().map(|t| &t.name).collect::<Vec<_>>()
+        );
+    }
+    // Timing uses its own run state: the shared ones still give the same answer, bit for bit.
+    assert_eq!(model.infer(&input).expect("inference"), before);
+    assert!(
+        model.node_times(&input[1..], 1).is_err(),
+        "short input refused"
+    );
+
+    // ONNX Runtime has its own profiler: no node times from framewise.
+    let ort = Model::load_with(
+        &package,
+        None,
+        &EngineOptions {
+            kind: EngineKind::OnnxRuntime,
+            onnxruntime_library: Some(framewise_tests::onnxruntime_library()),
+            threads: 1,
+        },
+    )
+    .expect("ONNX Runtime loads the demo model");
+    assert_eq!(ort.node_times(&input, 1).expect("no error"), None);
+}

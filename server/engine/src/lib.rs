@@ -34,7 +34,7 @@ pub use frame::{
     FrameError, FrameLimits, FrameRef, PixelFormat, Region, YuvMatrix, YuvRange, YuvSpec,
 };
 pub use manifest::Manifest;
-pub use model::{Model, ModelError, ModelIdentity, ModelPackage};
+pub use model::{Model, ModelError, ModelIdentity, ModelPackage, NodeTime};
 pub use pipeline::{Analyser, FrameSpec, Outcome, StreamSettings};
 pub use quality::QualitySpec;
 

@@ -36,6 +36,17 @@ pub struct ModelIdentity {
     pub engine: &'static str,
 }
 
+/// One node's part of an inference, from [`Model::node_times`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct NodeTime {
+    /// The node's name in the optimised plan; tract keeps the ONNX node's name at its start.
+    pub name: String,
+    /// The operator that runs it.
+    pub op: String,
+    /// Mean microseconds per run.
+    pub micros: f64,
+}
+
 /// Why a model package cannot be used.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
@@ -367,6 +378,28 @@ impl Model {
         Ok(out.pop().unwrap_or_default())
     }
 
+    /// Where an inference's time goes, node by node: `runs` runs of one frame's `input` on tract's optimised
+    /// plan (the plan [`Model::infer`] runs), after one untimed run, with each node's mean time per run.
+    /// `None` for ONNX Runtime, whose own profiler does this job. For measuring; not used while serving.
+    pub fn node_times(
+        &self,
+        input: &[f32],
+        runs: usize,
+    ) -> Result<Option<Vec<NodeTime>>, InferenceError> {
+        if input.len() != self.input_len() {
+            return Err(InferenceError(format!(
+                "input tensor has {} values, expected {}",
+                input.len(),
+                self.input_len()
+            )));
+        }
+        match &self.backend {
+            Backend::Tract(t) => t.node_times(self.input_shape, input, runs).map(Some),
+            #[cfg(feature = "onnxruntime")]
+            Backend::OnnxRuntime(_) => Ok(None),
+        }
+    }
+
     /// Runs several frames' input tensors as one batch. Needs a symbolic batch dimension (tract).
     pub fn infer_batch(&self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, InferenceError> {
         let n = inputs.len();
@@ -592,6 +625,43 @@ impl TractModel {
             .ok_or_else(|| InferenceError("the model produced no output".into()))?;
         let view = first.to_plain_array_view::<f32>().map_err(fail)?;
         Ok(view.iter().copied().collect())
+    }
+}
+
+impl TractModel {
+    fn node_times(
+        &self,
+        shape: [usize; 4],
+        input: &[f32],
+        runs: usize,
+    ) -> Result<Vec<NodeTime>, InferenceError> {
+        let fail = |e: TractError| InferenceError(format!("{e:#}"));
+        let mut state = self.plan.spawn().map_err(fail)?;
+        let nodes = self.plan.model().nodes();
+        let mut micros = vec![0.0f64; nodes.len()];
+        for run in 0..=runs {
+            let tensor = Tensor::from_shape(&shape, input).map_err(fail)?;
+            state
+                .run_plan_with_eval(tvec![tensor.into()], |ctx, op_state, node, inputs| {
+                    let start = std::time::Instant::now();
+                    let outputs = tract_onnx::tract_core::plan::eval(ctx, op_state, node, inputs);
+                    if run > 0 {
+                        micros[node.id] += start.elapsed().as_secs_f64() * 1e6;
+                    }
+                    outputs
+                })
+                .map_err(fail)?;
+        }
+        let runs = runs.max(1) as f64;
+        Ok(nodes
+            .iter()
+            .filter(|n| micros[n.id] > 0.0)
+            .map(|n| NodeTime {
+                name: n.name.clone(),
+                op: n.op().name().to_string(),
+                micros: micros[n.id] / runs,
+            })
+            .collect())
     }
 }
 
