@@ -24,6 +24,13 @@ run (its CPU latency QoS: /dev/cpu_dma_latency held open with the value written;
 Documentation/power/pm_qos_interface.rst), the same request framewise-server's `cpu_wake_latency_us` makes.
 Held by the script, it applies alike to every server, the peer and the bare engine.
 
+The bare engine is also bisected under the same limit, one step after each of the server's: fed at a fixed
+rate (`framewise-benchmarks throughput --rate`), frames taken in order, latency counted from each frame's due
+time, the step held when p99 stays under 100 ms and 97 % of the rate is achieved. The last two columns set
+the server's highest rate against that: what the server reaches of what the bare engine reaches under the
+same rule on the same minutes, where the share of bare throughput also counts the headroom any queue needs to
+keep p99 down on a host whose speed moves (--no-bare-open-loop skips it).
+
 When both the ONNX Runtime engine and the peer are measured, each session count ends with equal-load runs:
 both servers are fed the same total rate for --equal-runs rounds, alternating, so that their p50 and p99 are
 compared on the same load (the ratio is of the median p99 over the rounds, so that one stall of the host in
@@ -51,6 +58,8 @@ FORMAT = "rgb8"
 P99_LIMIT_MS = 100.0
 # Seconds of bare engine between two bisection steps.
 BARE_STEP_S = 2
+# Whether the bare engine gets its own bisection under the same p99 limit (--no-bare-open-loop: not).
+BARE_OPEN_LOOP = True
 
 
 def free_port():
@@ -135,14 +144,17 @@ def holds(r, total_fps):
 
 
 def saturate(kind, sessions, seconds, scratch, steps, engine):
-    """Bisection on the total rate; returns (best total fps that held, its report, the bare engine's rate
-    around that step). The bare engine runs for BARE_STEP_S between steps (the server idles meanwhile), so each
-    step is compared with the bare rate of the same minute: a shared machine drifts by a third within minutes."""
+    """Bisection on the total rate; returns ((best total fps that held, its report, the bare engine's rate
+    around that step) or None, the bare engine's highest rate under the same limit or None). The bare engine
+    runs for BARE_STEP_S between steps (the server idles meanwhile), so each step is compared with the bare
+    rate of the same minute: a shared machine drifts by a third within minutes."""
     proc, url = start(kind, sessions)
     try:
         bare_rates = [bare(engine, BARE_STEP_S)]
         hi_total = bare_rates[0] * 1.1
         lo, hi, best = 0.0, hi_total, None
+        # The bare engine's own bisection under the same p99 limit, one step after each of the server's.
+        bare_lo, bare_hi, bare_best = 0.0, hi_total, None
         for step in range(steps):
             total = hi_total * 0.6 if step == 0 else (lo + hi) / 2
             cpu_before = cpu_seconds(proc.pid)
@@ -161,7 +173,17 @@ def saturate(kind, sessions, seconds, scratch, steps, engine):
                 lo, best = total, (total, r, around)
             else:
                 hi = total
-        return best
+            if BARE_OPEN_LOOP:
+                rate = hi_total * 0.6 if step == 0 else (bare_lo + bare_hi) / 2
+                b = bare_open_loop(engine, rate, seconds)
+                b_ok = b["latency_p99_ms"] <= P99_LIMIT_MS and b["achieved_fps"] >= 0.97 * rate
+                print(f"  {'bare engine, open loop':24s}             {rate:7.1f} fps: p99 {b['latency_p99_ms']:8.1f} ms,"
+                      f" achieved {b['achieved_fps']:6.1f} -> {'holds' if b_ok else 'no'}", file=sys.stderr, flush=True)
+                if b_ok:
+                    bare_lo, bare_best = rate, rate
+                else:
+                    bare_hi = rate
+        return best, bare_best
     finally:
         stop(proc)
 
@@ -199,6 +221,16 @@ def stop(proc):
         proc.kill()
 
 
+def bare_open_loop(kind, rate, seconds):
+    """The bare engine fed at `rate` frames per second, latency counted from each frame's due time
+    (`framewise-benchmarks throughput --rate`)."""
+    out = subprocess.run([os.path.join(RELEASE, "framewise-benchmarks"), "throughput", "--engine", kind,
+                          "--model", MODEL, "--workers", "1" if PIN else str(os.cpu_count() or 2),
+                          "--seconds", str(seconds), "--rate", f"{rate:.3f}"],
+                         capture_output=True, text=True, check=True, preexec_fn=pinned(PIN and PIN[1]))
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
 def bare(kind, seconds):
     out = subprocess.run([os.path.join(RELEASE, "framewise-benchmarks"), "throughput", "--engine", kind,
                           "--model", MODEL,
@@ -208,7 +240,7 @@ def bare(kind, seconds):
 
 
 def main():
-    global MODEL, SIZE, FORMAT, PIN
+    global MODEL, SIZE, FORMAT, PIN, BARE_OPEN_LOOP
     ap = argparse.ArgumentParser()
     ap.add_argument("--seconds", type=float, default=8.0)
     ap.add_argument("--sessions", default="1,4,16")
@@ -222,6 +254,8 @@ def main():
                     help="server and bare engine on CPU 1 with one worker, load generator on CPU 0")
     ap.add_argument("--cpu-wake-latency-us", type=int, default=None,
                     help="hold idle CPUs' wake-up time to this bound for the whole run (0: keep them polling)")
+    ap.add_argument("--no-bare-open-loop", action="store_true",
+                    help="skip the bare engine's own bisection under the same p99 limit")
     ap.add_argument("--equal-runs", type=int, default=3,
                     help="rounds of the equal-load comparison of framewise and the peer (0: none)")
     ap.add_argument("--equal-loads", default="1.0,0.8",
@@ -235,6 +269,7 @@ def main():
         except OSError as e:
             sys.exit(f"--cpu-wake-latency-us: cannot open /dev/cpu_dma_latency ({e}); it needs root")
         os.write(wake_hold, struct.pack("i", args.cpu_wake_latency_us))
+    BARE_OPEN_LOOP = not args.no_bare_open_loop
     if args.pin:
         if len(os.sched_getaffinity(0)) < 2:
             sys.exit("--pin needs two CPUs")
@@ -254,14 +289,15 @@ def main():
     for sessions in [int(s) for s in args.sessions.split(",")]:
         for kind in servers:
             engine = engines[kind]
-            found = saturate(kind, sessions, args.seconds, scratch, args.steps, engine)
+            found, bare_limit = saturate(kind, sessions, args.seconds, scratch, args.steps, engine)
             total, r, bare_fps = found if found else (0.0, None, 0.0)
             rows.append({"server": kind, "sessions": sessions, "max_total_fps": total,
                          "bare_engine_fps": bare_fps,
                          "share_of_bare": total / bare_fps if bare_fps else 0.0,
                          "p50_ms": r["end_to_end_ms"]["p50"] if r else None,
                          "p99_ms": r["end_to_end_ms"]["p99"] if r else None,
-                         "server_cpu_ms_per_frame": r["server_cpu_ms_per_frame"] if r else None})
+                         "server_cpu_ms_per_frame": r["server_cpu_ms_per_frame"] if r else None,
+                         "bare_open_loop_fps": bare_limit})
         if compare:
             held = [row["max_total_fps"] for row in rows[-len(servers):]
                     if row["server"] in ("framewise onnxruntime", "python peer")]
@@ -273,8 +309,9 @@ def main():
                                        "runs": runs})
     print("| server | sessions | highest total fps with p99 < 100 ms | p50 ms | p99 ms |"
           " bare engine fps around that step | share of bare | server CPU ms per frame |"
-          " frames per CPU-second, share of bare |")
-    print("|---|---|---|---|---|---|---|---|---|")
+          " frames per CPU-second, share of bare | bare engine's highest fps with p99 < 100 ms |"
+          " share of that |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
     for row in rows:
         p50 = f"{row['p50_ms']:.1f}" if row["p50_ms"] is not None else "-"
         p99 = f"{row['p99_ms']:.1f}" if row["p99_ms"] is not None else "-"
@@ -283,9 +320,13 @@ def main():
         cpu = row["server_cpu_ms_per_frame"]
         cpu_ms = f"{cpu:.2f}" if cpu else "-"
         cpu_share = f"{1000 / cpu / row['bare_engine_fps']:.2f}" if cpu and row["bare_engine_fps"] and PIN else "-"
+        limit = row["bare_open_loop_fps"]
+        open_fps = f"{limit:.1f}" if limit else "-"
+        open_share = f"{row['max_total_fps'] / limit:.2f}" if limit else "-"
         print(f"| {row['server']} | {row['sessions']} | {row['max_total_fps']:.1f} | {p50} | {p99} |"
               f" {row['bare_engine_fps']:.1f} |"
-              f" {row['share_of_bare']:.2f} | {cpu_ms} | {cpu_share} |")
+              f" {row['share_of_bare']:.2f} | {cpu_ms} | {cpu_share} |"
+              f" {open_fps} | {open_share} |")
     if equal_rows:
         print()
         print("| sessions | load | total fps, both servers | framewise p50 ms | framewise p99 ms | peer p50 ms |"

@@ -87,6 +87,11 @@ enum Bench {
         /// between frames, as it does in a server fed at a frame rate.
         #[arg(long, default_value_t = 0.0)]
         pause_ms: f64,
+        /// Open loop: frames are due at this total rate (frames per second) and taken in order by the
+        /// workers, as a server's queue would hold them; latency is counted from each frame's due time, so
+        /// its p99 can be held to the same limit as a server's at saturation.
+        #[arg(long)]
+        rate: Option<f64>,
     },
     /// Service overhead: end-to-end through a loopback server minus the reported inference time.
     Overhead {
@@ -149,7 +154,11 @@ fn run() -> Result<()> {
             seconds,
             model,
             pause_ms,
-        } => throughput(kind, workers, seconds, model, pause_ms)?,
+            rate,
+        } => match rate {
+            Some(rate) => open_loop(kind, workers, seconds, model, rate)?,
+            None => throughput(kind, workers, seconds, model, pause_ms)?,
+        },
         Bench::Transport { bytes, trips } => transport(&bytes, trips)?,
         Bench::Ops { frames } => ops(frames)?,
         Bench::Overhead {
@@ -497,6 +506,72 @@ fn throughput(
         "frames_per_second": fps, "inference_median_ms": median, "inference_p99_ms": p99});
     println!("{figures}");
     Ok(json!({ "throughput": figures }))
+}
+
+/// The bare engine fed at a fixed rate: frame i is due at i / rate seconds, the workers take frames in order
+/// (waiting for a frame that is not yet due), and each frame's latency runs from its due time to the end of
+/// its inference, queueing included.
+fn open_loop(
+    kind: EngineKind,
+    workers: usize,
+    seconds: f64,
+    model: Option<PathBuf>,
+    rate: f64,
+) -> Result<serde_json::Value> {
+    if !(rate.is_finite() && rate > 0.0) {
+        bail!("--rate {rate}: expected a positive number of frames per second");
+    }
+    let bench = match model {
+        Some(dir) => ModelPackage::read(&dir)?,
+        None => bench_package()?.0,
+    };
+    let model = Model::load_with(&bench, None, &engine(kind, 1))?;
+    let input: Vec<f32> = (0..model.input_len())
+        .map(|i| (i % 255) as f32 / 255.0)
+        .collect();
+    for _ in 0..5 {
+        model.infer(&input)?;
+    }
+    let next = std::sync::atomic::AtomicU64::new(0);
+    let start = Instant::now();
+    let window = Duration::from_secs_f64(seconds);
+    let latencies: Vec<f64> = std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..workers.max(1))
+            .map(|_| {
+                scope.spawn(|| {
+                    let mut latencies = Vec::new();
+                    loop {
+                        let i = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                        let due = Duration::from_secs_f64(i as f64 / rate);
+                        if due >= window {
+                            break;
+                        }
+                        if let Some(wait) = due.checked_sub(start.elapsed()) {
+                            std::thread::sleep(wait);
+                        }
+                        if model.infer(&input).is_ok() {
+                            let done = start.elapsed();
+                            latencies.push(done.saturating_sub(due).as_secs_f64() * 1000.0);
+                        }
+                    }
+                    latencies
+                })
+            })
+            .collect();
+        handles
+            .into_iter()
+            .flat_map(|h| h.join().unwrap_or_default())
+            .collect()
+    });
+    let scheduled = (rate * seconds).ceil();
+    let answered = latencies.len();
+    let achieved = answered as f64 / start.elapsed().as_secs_f64();
+    let (p50, p99) = summary(latencies);
+    let figures = json!({"engine": kind.to_string(), "workers": workers, "rate": rate,
+        "scheduled": scheduled, "answered": answered, "achieved_fps": achieved,
+        "latency_p50_ms": p50, "latency_p99_ms": p99});
+    println!("{figures}");
+    Ok(json!({ "open_loop": figures }))
 }
 
 /// Synthetic frames (invented phantom views) in a format and size.
