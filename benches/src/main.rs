@@ -7,9 +7,9 @@
 //! - `transport`: the floor under moving a frame, bare TCP loopback and Unix-socket round trips and a copy.
 //! - `overhead`: end-to-end time through a loopback server (one session, every frame) minus the inference
 //!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames.
-//!
 //! - `ops`: where an inference's time goes on the MobileNetV2-shaped network, by kind of layer, for tract
 //!   (its plan timed node by node) and Python onnxruntime (its own profiler).
+//! - `throughput`: the bare engine's frames per second (with `--rate`, fed open loop at a fixed rate).
 //!
 //! Saturation and the Python peer are measured by `benches/saturation.py` with `framewise bench`.
 //!
@@ -336,7 +336,6 @@ fn ops(frames: usize) -> Result<serde_json::Value> {
         .context("tract gave no node times")?;
 
     // kind -> (onnxruntime µs, its nodes, tract µs, its nodes), in the order kinds first appear.
-    let mut table: Vec<Row> = Vec::new();
     type Row = (String, f64, usize, f64, usize);
     fn row<'t>(table: &'t mut Vec<Row>, kind: &str) -> &'t mut Row {
         let i = match table.iter().position(|r| r.0 == kind) {
@@ -349,6 +348,7 @@ fn ops(frames: usize) -> Result<serde_json::Value> {
         &mut table[i]
     }
     const OWN: &str = "the runtime's own nodes (layout changes)";
+    let mut table: Vec<Row> = Vec::new();
     let mut ort_ops = std::collections::BTreeMap::<String, f64>::new();
     for (name, node) in ort_nodes {
         let us = node["us"].as_f64().unwrap_or(0.0);

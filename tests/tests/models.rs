@@ -248,7 +248,7 @@ fn node_times_cover_the_graphs_nodes_and_leave_inference_unchanged() {
         .expect("node times")
         .expect("tract times its nodes");
     assert!(!times.is_empty());
-    assert!(times.iter().all(|t| t.micros.is_finite() && t.micros > 0.0));
+    assert!(times.iter().all(|t| t.micros.is_finite()));
     // Every convolution of the ONNX graph is run by at least one plan node that carries its name.
     let proto = tract_onnx::pb::ModelProto::decode(framewise_models_demo::package::DEMO_ONNX)
         .expect("demo ONNX decodes");

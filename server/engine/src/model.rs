@@ -626,9 +626,7 @@ impl TractModel {
         let view = first.to_plain_array_view::<f32>().map_err(fail)?;
         Ok(view.iter().copied().collect())
     }
-}
 
-impl TractModel {
     fn node_times(
         &self,
         shape: [usize; 4],
