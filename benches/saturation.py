@@ -221,22 +221,23 @@ def stop(proc):
         proc.kill()
 
 
-def bare_open_loop(kind, rate, seconds):
-    """The bare engine fed at `rate` frames per second, latency counted from each frame's due time
-    (`framewise-benchmarks throughput --rate`)."""
+def bare_throughput(kind, seconds, *extra):
+    """`framewise-benchmarks throughput` on the server's CPU and worker count; its JSON line."""
     out = subprocess.run([os.path.join(RELEASE, "framewise-benchmarks"), "throughput", "--engine", kind,
                           "--model", MODEL, "--workers", "1" if PIN else str(os.cpu_count() or 2),
-                          "--seconds", str(seconds), "--rate", f"{rate:.3f}"],
+                          "--seconds", str(seconds), *extra],
                          capture_output=True, text=True, check=True, preexec_fn=pinned(PIN and PIN[1]))
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
+def bare_open_loop(kind, rate, seconds):
+    """The bare engine fed at `rate` frames per second, latency counted from each frame's due time
+    (`framewise-benchmarks throughput --rate`)."""
+    return bare_throughput(kind, seconds, "--rate", f"{rate:.3f}")
+
+
 def bare(kind, seconds):
-    out = subprocess.run([os.path.join(RELEASE, "framewise-benchmarks"), "throughput", "--engine", kind,
-                          "--model", MODEL,
-                          "--workers", "1" if PIN else str(os.cpu_count() or 2), "--seconds", str(seconds)],
-                         capture_output=True, text=True, check=True, preexec_fn=pinned(PIN and PIN[1]))
-    return json.loads(out.stdout.strip().splitlines()[-1])["frames_per_second"]
+    return bare_throughput(kind, seconds)["frames_per_second"]
 
 
 def main():

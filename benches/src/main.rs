@@ -257,26 +257,35 @@ fn time_model(model: &Model, frames: usize) -> Result<(f64, f64)> {
     Ok(summary(ms))
 }
 
-fn python_reference(onnx: &Path, threads: usize, frames: usize) -> Result<(f64, f64)> {
-    let script = framewise_tests::workspace_root().join("benches/reference_inference.py");
+/// Runs one of the Python helpers in `benches/` with the reference venv's interpreter on a model, and reads
+/// the JSON it prints.
+fn python_helper(script: &str, onnx: &Path, args: &[&str]) -> Result<serde_json::Value> {
+    let path = framewise_tests::workspace_root()
+        .join("benches")
+        .join(script);
     let out = Command::new(framewise_tests::python())
-        .arg(&script)
+        .arg(&path)
         .args(["--model".as_ref(), onnx.as_os_str()])
-        .args([
+        .args(args)
+        .output()
+        .with_context(|| format!("running benches/{script}"))?;
+    if !out.status.success() {
+        bail!("{script} failed: {}", String::from_utf8_lossy(&out.stderr));
+    }
+    Ok(serde_json::from_slice(&out.stdout)?)
+}
+
+fn python_reference(onnx: &Path, threads: usize, frames: usize) -> Result<(f64, f64)> {
+    let v = python_helper(
+        "reference_inference.py",
+        onnx,
+        &[
             "--threads",
             &threads.to_string(),
             "--frames",
             &frames.to_string(),
-        ])
-        .output()
-        .context("running benches/reference_inference.py")?;
-    if !out.status.success() {
-        bail!(
-            "reference_inference.py failed: {}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-    }
-    let v: serde_json::Value = serde_json::from_slice(&out.stdout)?;
+        ],
+    )?;
     Ok((
         v["median_ms"].as_f64().unwrap_or(f64::NAN),
         v["p99_ms"].as_f64().unwrap_or(f64::NAN),
@@ -305,20 +314,11 @@ fn layer_kind<'a>(
 fn ops(frames: usize) -> Result<serde_json::Value> {
     let (bench, bench_dir) = bench_package()?;
     let onnx = bench_dir.join(&bench.manifest.file);
-    let script = framewise_tests::workspace_root().join("benches/reference_ops.py");
-    let out = Command::new(framewise_tests::python())
-        .arg(&script)
-        .args(["--model".as_ref(), onnx.as_os_str()])
-        .args(["--frames", &frames.to_string()])
-        .output()
-        .context("running benches/reference_ops.py")?;
-    if !out.status.success() {
-        bail!(
-            "reference_ops.py failed: {}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-    }
-    let reference: serde_json::Value = serde_json::from_slice(&out.stdout)?;
+    let reference = python_helper(
+        "reference_ops.py",
+        &onnx,
+        &["--frames", &frames.to_string()],
+    )?;
     let empty = serde_json::Map::new();
     let kinds = reference["layer_kinds"].as_object().unwrap_or(&empty);
     let ort_nodes = reference["nodes"].as_object().unwrap_or(&empty);
@@ -459,14 +459,10 @@ fn inference(frames: usize) -> Result<serde_json::Value> {
     Ok(json!({"inference": rows}))
 }
 
-fn throughput(
-    kind: EngineKind,
-    workers: usize,
-    seconds: f64,
-    model: Option<PathBuf>,
-    pause_ms: f64,
-) -> Result<serde_json::Value> {
-    let bench = match model {
+/// The bare benches' model (the given package, or the MobileNetV2-shaped network) on one engine with one
+/// thread, and a fixed input tensor for it.
+fn bare_model(kind: EngineKind, package: Option<PathBuf>) -> Result<(Model, Vec<f32>)> {
+    let bench = match package {
         Some(dir) => ModelPackage::read(&dir)?,
         None => bench_package()?.0,
     };
@@ -474,6 +470,17 @@ fn throughput(
     let input: Vec<f32> = (0..model.input_len())
         .map(|i| (i % 255) as f32 / 255.0)
         .collect();
+    Ok((model, input))
+}
+
+fn throughput(
+    kind: EngineKind,
+    workers: usize,
+    seconds: f64,
+    model: Option<PathBuf>,
+    pause_ms: f64,
+) -> Result<serde_json::Value> {
+    let (model, input) = bare_model(kind, model)?;
     let stop = Instant::now() + Duration::from_secs_f64(seconds);
     let start = Instant::now();
     let pause = Duration::from_secs_f64(pause_ms.max(0.0) / 1000.0);
@@ -521,14 +528,7 @@ fn open_loop(
     if !(rate.is_finite() && rate > 0.0) {
         bail!("--rate {rate}: expected a positive number of frames per second");
     }
-    let bench = match model {
-        Some(dir) => ModelPackage::read(&dir)?,
-        None => bench_package()?.0,
-    };
-    let model = Model::load_with(&bench, None, &engine(kind, 1))?;
-    let input: Vec<f32> = (0..model.input_len())
-        .map(|i| (i % 255) as f32 / 255.0)
-        .collect();
+    let (model, input) = bare_model(kind, model)?;
     for _ in 0..5 {
         model.infer(&input)?;
     }
