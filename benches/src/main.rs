@@ -6,7 +6,9 @@
 //!   SIMD path and on a plain path built from the `image` crate and scalar colour conversion.
 //! - `transport`: the floor under moving a frame, bare TCP loopback and Unix-socket round trips and a copy.
 //! - `overhead`: end-to-end time through a loopback server (one session, every frame) minus the inference
-//!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames.
+//!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames; before each row the same frames go
+//!   to the transport's floor (`floor.rs`), a server on the same wire that answers at once, so that what
+//!   framewise adds above gRPC, HTTP/2 and the connection can be read apart.
 //! - `ops`: where an inference's time goes on the MobileNetV2-shaped network, by kind of layer, for tract
 //!   (its plan timed node by node) and Python onnxruntime (its own profiler).
 //! - `throughput`: the bare engine's frames per second (with `--rate`, fed open loop at a fixed rate).
@@ -33,6 +35,8 @@ use framewise_models_demo::phantom::{Drum, random_view};
 use framewise_models_demo::rng::SplitMix64;
 use framewise_proto::v1 as pb;
 use serde_json::json;
+
+mod floor;
 
 #[derive(Parser)]
 #[command(about = "framewise benchmarks (numbers for BENCHMARKS.md)")]
@@ -93,7 +97,8 @@ enum Bench {
         #[arg(long)]
         rate: Option<f64>,
     },
-    /// Service overhead: end-to-end through a loopback server minus the reported inference time.
+    /// Service overhead: end-to-end through a loopback server minus the reported inference time, beside the
+    /// round trip of a server on the same wire that answers each frame at once (the transport's floor).
     Overhead {
         /// Frames per configuration.
         #[arg(long, default_value_t = 300)]
@@ -863,7 +868,7 @@ async fn overhead(
         }
     }
     let chosen = |list: &[String], name: &str| list.is_empty() || list.iter().any(|l| l == name);
-    let (_, bench_dir) = bench_package()?;
+    let (bench, bench_dir) = bench_package()?;
     let socket =
         std::env::temp_dir().join(format!("framewise-overhead-{}.sock", std::process::id()));
     // Frame files on a memory file system where there is one, as a capture process would place them.
@@ -873,11 +878,23 @@ async fn overhead(
     } else {
         std::env::temp_dir()
     };
+    // The transport's floor, on the same runtime, measured just before each row with the same frames.
+    let floor_socket =
+        std::env::temp_dir().join(format!("framewise-floor-{}.sock", std::process::id()));
+    let floor = floor::FloorServer::start(&floor_socket, bench.manifest.classes.len()).await?;
+    let floor_urls = [
+        ("tcp loopback", format!("http://{}", floor.addr)),
+        ("unix socket", format!("unix:{}", floor_socket.display())),
+        (
+            "unix socket + frame file",
+            format!("unix:{}", floor_socket.display()),
+        ),
+    ];
     let mut rows = Vec::new();
     println!(
-        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which hand-over to a worker p50 | of which the rest in the server p50 | of which transport (outside the server) p50 |"
+        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which hand-over to a worker p50 | of which the rest in the server p50 | of which transport (outside the server) p50 | transport floor round trip p50 ms | overhead above the floor p50 ms |"
     );
-    println!("|---|---|---|---|---|---|---|---|---|---|---|");
+    println!("|---|---|---|---|---|---|---|---|---|---|---|---|---|");
     for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
         if !engines.is_empty() && !engines.contains(&kind) {
             continue;
@@ -935,6 +952,18 @@ async fn overhead(
                     )?),
                     false => None,
                 };
+                let floor_url = floor_urls
+                    .iter()
+                    .find(|(name, _)| name == connection)
+                    .map(|(_, url)| url)
+                    .context("no floor for this connection")?;
+                let floor_trips: Vec<f64> =
+                    one_session(floor_url, format, w, h, &data, frames, file.as_mut())
+                        .await?
+                        .iter()
+                        .map(|s| s.round_trip)
+                        .collect();
+                let (floor50, _) = summary(floor_trips);
                 let samples = one_session(url, format, w, h, &data, frames, file.as_mut()).await?;
                 let of = |f: fn(&Sample) -> f64| summary(samples.iter().map(f).collect());
                 let ((rtt50, _), (inf50, _), (o50, o99)) = (
@@ -947,20 +976,23 @@ async fn overhead(
                 // hand-back from the worker, everything between arrival and hand-off not timed as a stage.
                 let (rest50, _) = of(|s| s.total - s.queue - s.preprocess - s.inference);
                 let (out50, _) = of(|s| s.round_trip - s.total);
+                let above = o50 - floor50;
                 println!(
-                    "| {kind} | {format} {w}x{h} | {connection} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {queue50:.3} | {rest50:.3} | {out50:.3} |"
+                    "| {kind} | {format} {w}x{h} | {connection} | {rtt50:.3} | {inf50:.3} | {o50:.3} | {o99:.3} | {pre50:.3} | {queue50:.3} | {rest50:.3} | {out50:.3} | {floor50:.3} | {above:.3} |"
                 );
                 rows.push(
                     json!({"engine": kind.to_string(), "format": format.to_string(), "width": w,
                     "height": h, "connection": connection, "round_trip_p50_ms": rtt50,
                     "inference_p50_ms": inf50, "overhead_p50_ms": o50, "overhead_p99_ms": o99,
                     "preprocess_p50_ms": pre50, "queue_p50_ms": queue50,
-                    "rest_in_server_p50_ms": rest50, "outside_server_p50_ms": out50}),
+                    "rest_in_server_p50_ms": rest50, "outside_server_p50_ms": out50,
+                    "floor_round_trip_p50_ms": floor50, "above_floor_p50_ms": above}),
                 );
             }
         }
         server.stop().await?;
     }
+    floor.stop().await?;
     Ok(json!({"overhead": rows, "cpu_wake_latency_us": cpu_wake_latency_us}))
 }
 

@@ -49,6 +49,16 @@ pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 /// Largest HTTP/2 frame the server accepts (the protocol allows up to 16 MiB - 1; the default is 16 KiB).
 pub const HTTP2_MAX_FRAME_BYTES: u32 = 1 << 20;
 
+/// The gRPC transport with the server's HTTP/2 settings. Flow control is sized for frames: a 1920x1080 NV12
+/// frame is 3 MB, which the protocol's default 64 KiB windows would let through in many acknowledged pieces.
+/// The windows also bound what one session and one connection can have in flight before the server reads it.
+pub fn transport() -> tonic::transport::Server {
+    tonic::transport::Server::builder()
+        .initial_stream_window_size(Some(STREAM_WINDOW_BYTES))
+        .initial_connection_window_size(Some(CONNECTION_WINDOW_BYTES))
+        .max_frame_size(Some(HTTP2_MAX_FRAME_BYTES))
+}
+
 /// A running server.
 pub struct RunningServer {
     /// The gRPC address it listens on.
@@ -163,15 +173,6 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
         .set_service_status("", tonic_health::ServingStatus::Serving)
         .await;
 
-    // HTTP/2 flow control sized for frames: a 1920x1080 NV12 frame is 3 MB, which the protocol's default
-    // 64 KiB windows would let through in many acknowledged pieces. The windows also bound what one session
-    // and one connection can have in flight before the server reads it.
-    let transport = || {
-        tonic::transport::Server::builder()
-            .initial_stream_window_size(Some(STREAM_WINDOW_BYTES))
-            .initial_connection_window_size(Some(CONNECTION_WINDOW_BYTES))
-            .max_frame_size(Some(HTTP2_MAX_FRAME_BYTES))
-    };
     let mut builder = transport();
     if let Some(tls) = &config.tls {
         let cert =

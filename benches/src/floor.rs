@@ -1,0 +1,155 @@
+//! The transport's floor: a server on framewise's wire contract and HTTP/2 settings that answers each frame
+//! the moment its message is decoded, with an answer of the same shape as framewise's, and does nothing
+//! else (no preprocessing, no worker, no inference, no filter). Its round trip is what gRPC, HTTP/2, the
+//! async runtime and the connection cost on this host; framewise's overhead above it is the server's own.
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result};
+use framewise_proto::v1 as pb;
+use framewise_proto::v1::frame_analysis_server::{FrameAnalysis, FrameAnalysisServer};
+use tokio::sync::mpsc;
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_util::sync::CancellationToken;
+use tonic::{Request, Response, Status, Streaming};
+
+/// Answers a session's frames at once; every other call is refused.
+struct Floor {
+    classes: usize,
+}
+
+/// Messages a session may have waiting for the client, as in framewise's sessions.
+const BUFFER: usize = 4;
+
+#[tonic::async_trait]
+impl FrameAnalysis for Floor {
+    type ConverseStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
+
+    async fn converse(
+        &self,
+        request: Request<Streaming<pb::SessionInput>>,
+    ) -> Result<Response<Self::ConverseStream>, Status> {
+        let mut inbound = request.into_inner();
+        let (outbox, answers) = mpsc::channel(BUFFER);
+        let classes = self.classes;
+        // One task per session reads, answers and hands the answer to the response stream, as framewise's
+        // every-frame sessions do.
+        tokio::spawn(async move {
+            while let Ok(Some(input)) = inbound.message().await {
+                let item = match input.item {
+                    Some(pb::session_input::Item::Opening(_)) => {
+                        pb::session_output::Item::Accepted(pb::SessionAccepted {
+                            caution: framewise_engine::CAUTION.into(),
+                            ..Default::default()
+                        })
+                    }
+                    Some(pb::session_input::Item::Frame(frame)) => {
+                        pb::session_output::Item::Answer(pb::Answer {
+                            seq: frame.seq,
+                            capture_time_us: frame.capture_time_us,
+                            outcome: Some(pb::answer::Outcome::Result(pb::FrameResult {
+                                raw: vec![0.0; classes],
+                                smoothed: vec![0.0; classes],
+                                decision: Some(pb::Decision::default()),
+                                quality: Some(pb::Quality::default()),
+                                timings: Some(pb::StageTimings::default()),
+                                deadline_missed: false,
+                            })),
+                            model: Some(pb::ModelIdentity::default()),
+                            caution: framewise_engine::CAUTION.into(),
+                        })
+                    }
+                    None => continue,
+                };
+                let out = pb::SessionOutput { item: Some(item) };
+                if outbox.send(Ok(out)).await.is_err() {
+                    break;
+                }
+            }
+        });
+        Ok(Response::new(ReceiverStream::new(answers)))
+    }
+
+    async fn list_models(
+        &self,
+        _: Request<pb::ListModelsRequest>,
+    ) -> Result<Response<pb::ListModelsReply>, Status> {
+        Err(Status::unimplemented(
+            "the transport floor only answers frames",
+        ))
+    }
+
+    async fn describe_model(
+        &self,
+        _: Request<pb::DescribeModelRequest>,
+    ) -> Result<Response<pb::ModelDescription>, Status> {
+        Err(Status::unimplemented(
+            "the transport floor only answers frames",
+        ))
+    }
+
+    async fn read_statistics(
+        &self,
+        _: Request<pb::StatisticsRequest>,
+    ) -> Result<Response<pb::ServerStatistics>, Status> {
+        Err(Status::unimplemented(
+            "the transport floor only answers frames",
+        ))
+    }
+}
+
+/// A running floor server on TCP loopback and a Unix socket.
+pub struct FloorServer {
+    pub addr: SocketAddr,
+    pub socket: PathBuf,
+    stop: CancellationToken,
+    tasks: Vec<tokio::task::JoinHandle<Result<(), tonic::transport::Error>>>,
+}
+
+impl FloorServer {
+    /// Serves on 127.0.0.1 (a free port) and on `socket`, with framewise's HTTP/2 settings and message limit.
+    pub async fn start(socket: &Path, classes: usize) -> Result<Self> {
+        let max = framewise_server::ServerConfig::default().max_message_bytes;
+        let service = FrameAnalysisServer::new(Floor { classes })
+            .max_decoding_message_size(max)
+            .max_encoding_message_size(max);
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
+        let addr = listener.local_addr()?;
+        let _ = std::fs::remove_file(socket);
+        let unix = tokio::net::UnixListener::bind(socket)
+            .with_context(|| format!("binding {}", socket.display()))?;
+        let stop = CancellationToken::new();
+        let stopped = |token: &CancellationToken| {
+            let token = token.clone();
+            async move { token.cancelled().await }
+        };
+        let tcp = framewise_server::transport()
+            .add_service(service.clone())
+            .serve_with_incoming_shutdown(
+                tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
+                stopped(&stop),
+            );
+        let unix = framewise_server::transport()
+            .add_service(service)
+            .serve_with_incoming_shutdown(
+                tokio_stream::wrappers::UnixListenerStream::new(unix),
+                stopped(&stop),
+            );
+        Ok(Self {
+            addr,
+            socket: socket.to_path_buf(),
+            stop,
+            tasks: vec![tokio::spawn(tcp), tokio::spawn(unix)],
+        })
+    }
+
+    pub async fn stop(self) -> Result<()> {
+        self.stop.cancel();
+        for task in self.tasks {
+            task.await??;
+        }
+        let _ = std::fs::remove_file(&self.socket);
+        Ok(())
+    }
+}
