@@ -1,10 +1,12 @@
 //! The transport's floor: a server on framewise's wire contract and HTTP/2 settings that answers each frame
-//! the moment its message is decoded, with an answer of the same shape as framewise's, and does nothing
-//! else (no preprocessing, no worker, no inference, no filter). Its round trip is what gRPC, HTTP/2, the
-//! async runtime and the connection cost on this host; framewise's overhead above it is the server's own.
+//! the moment its message is decoded (or after a pause as long as an inference, its threads idle meanwhile),
+//! with an answer of the same shape as framewise's, and does nothing else (no preprocessing, no worker, no
+//! inference, no filter). Its round trip less the pause is what gRPC, HTTP/2, the async runtime and the
+//! connection cost on this host; framewise's overhead above it is the server's own.
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
 use framewise_proto::v1 as pb;
@@ -14,9 +16,10 @@ use tokio_stream::wrappers::ReceiverStream;
 use tokio_util::sync::CancellationToken;
 use tonic::{Request, Response, Status, Streaming};
 
-/// Answers a session's frames at once; every other call is refused.
+/// Answers a session's frames at once, or after `pause`; every other call is refused.
 struct Floor {
     classes: usize,
+    pause: Duration,
 }
 
 /// Messages a session may have waiting for the client, as in framewise's sessions.
@@ -32,7 +35,7 @@ impl FrameAnalysis for Floor {
     ) -> Result<Response<Self::ConverseStream>, Status> {
         let mut inbound = request.into_inner();
         let (outbox, answers) = mpsc::channel(BUFFER);
-        let classes = self.classes;
+        let (classes, pause) = (self.classes, self.pause);
         // One task per session reads, answers and hands the answer to the response stream, as framewise's
         // every-frame sessions do.
         tokio::spawn(async move {
@@ -45,6 +48,15 @@ impl FrameAnalysis for Floor {
                         })
                     }
                     Some(pb::session_input::Item::Frame(frame)) => {
+                        // A pause stands in for an inference: the runtime's threads go idle as they do
+                        // while a worker infers. Its measured length is reported as the inference time,
+                        // so that the client subtracts it as it does framewise's.
+                        let mut paused_us = 0;
+                        if !pause.is_zero() {
+                            let start = Instant::now();
+                            tokio::time::sleep(pause).await;
+                            paused_us = start.elapsed().as_micros() as u64;
+                        }
                         pb::session_output::Item::Answer(pb::Answer {
                             seq: frame.seq,
                             capture_time_us: frame.capture_time_us,
@@ -53,7 +65,10 @@ impl FrameAnalysis for Floor {
                                 smoothed: vec![0.0; classes],
                                 decision: Some(pb::Decision::default()),
                                 quality: Some(pb::Quality::default()),
-                                timings: Some(pb::StageTimings::default()),
+                                timings: Some(pb::StageTimings {
+                                    inference_us: paused_us,
+                                    ..Default::default()
+                                }),
                                 deadline_missed: false,
                             })),
                             model: Some(pb::ModelIdentity::default()),
@@ -108,10 +123,11 @@ pub struct FloorServer {
 }
 
 impl FloorServer {
-    /// Serves on 127.0.0.1 (a free port) and on `socket`, with framewise's HTTP/2 settings and message limit.
-    pub async fn start(socket: &Path, classes: usize) -> Result<Self> {
+    /// Serves on 127.0.0.1 (a free port) and on `socket`, with framewise's HTTP/2 settings and message limit;
+    /// each frame is answered after `pause` (zero: at once).
+    pub async fn start(socket: &Path, classes: usize, pause: Duration) -> Result<Self> {
         let max = framewise_server::ServerConfig::default().max_message_bytes;
-        let service = FrameAnalysisServer::new(Floor { classes })
+        let service = FrameAnalysisServer::new(Floor { classes, pause })
             .max_decoding_message_size(max)
             .max_encoding_message_size(max);
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;

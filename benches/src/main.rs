@@ -116,6 +116,10 @@ enum Bench {
         /// during the run (0: keep them polling; needs write access to /dev/cpu_dma_latency).
         #[arg(long)]
         cpu_wake_latency_us: Option<u32>,
+        /// The transport's floor answers each frame after this pause (ms) instead of at once, its threads
+        /// idle meanwhile as while an inference runs; the pause is subtracted like an inference.
+        #[arg(long, default_value_t = 0.0)]
+        floor_pause_ms: f64,
     },
     /// Where an inference's time goes, by kind of layer: tract's plan timed node by node beside Python
     /// onnxruntime's profiler, one thread each, on the MobileNetV2-shaped network.
@@ -172,6 +176,7 @@ fn run() -> Result<()> {
             kinds,
             connections,
             cpu_wake_latency_us,
+            floor_pause_ms,
         } => {
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
@@ -183,6 +188,7 @@ fn run() -> Result<()> {
                 &kinds,
                 &connections,
                 cpu_wake_latency_us,
+                floor_pause_ms,
             ))?
         }
     };
@@ -856,6 +862,7 @@ async fn overhead(
     kinds: &[String],
     connections: &[String],
     cpu_wake_latency_us: Option<u32>,
+    floor_pause_ms: f64,
 ) -> Result<serde_json::Value> {
     for k in kinds {
         if !["rgb224", "nv12-1080"].contains(&k.as_str()) {
@@ -881,7 +888,15 @@ async fn overhead(
     // The transport's floor, on the same runtime, measured just before each row with the same frames.
     let floor_socket =
         std::env::temp_dir().join(format!("framewise-floor-{}.sock", std::process::id()));
-    let floor = floor::FloorServer::start(&floor_socket, bench.manifest.classes.len()).await?;
+    if !(0.0..=1000.0).contains(&floor_pause_ms) {
+        bail!("--floor-pause-ms {floor_pause_ms}: expected 0 to 1000");
+    }
+    let floor = floor::FloorServer::start(
+        &floor_socket,
+        bench.manifest.classes.len(),
+        Duration::from_secs_f64(floor_pause_ms / 1000.0),
+    )
+    .await?;
     let floor_urls = [
         ("tcp loopback", format!("http://{}", floor.addr)),
         ("unix socket", format!("unix:{}", floor_socket.display())),
@@ -892,7 +907,7 @@ async fn overhead(
     ];
     let mut rows = Vec::new();
     println!(
-        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which hand-over to a worker p50 | of which the rest in the server p50 | of which transport (outside the server) p50 | transport floor round trip p50 ms | overhead above the floor p50 ms |"
+        "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which hand-over to a worker p50 | of which the rest in the server p50 | of which transport (outside the server) p50 | transport floor p50 ms (round trip less its pause) | overhead above the floor p50 ms |"
     );
     println!("|---|---|---|---|---|---|---|---|---|---|---|---|---|");
     for kind in [EngineKind::OnnxRuntime, EngineKind::Tract] {
@@ -957,11 +972,12 @@ async fn overhead(
                     .find(|(name, _)| name == connection)
                     .map(|(_, url)| url)
                     .context("no floor for this connection")?;
+                // The floor's round trip less its pause (zero unless --floor-pause-ms).
                 let floor_trips: Vec<f64> =
                     one_session(floor_url, format, w, h, &data, frames, file.as_mut())
                         .await?
                         .iter()
-                        .map(|s| s.round_trip)
+                        .map(|s| s.round_trip - s.inference)
                         .collect();
                 let (floor50, _) = summary(floor_trips);
                 let samples = one_session(url, format, w, h, &data, frames, file.as_mut()).await?;
@@ -993,7 +1009,9 @@ async fn overhead(
         server.stop().await?;
     }
     floor.stop().await?;
-    Ok(json!({"overhead": rows, "cpu_wake_latency_us": cpu_wake_latency_us}))
+    Ok(
+        json!({"overhead": rows, "cpu_wake_latency_us": cpu_wake_latency_us, "floor_pause_ms": floor_pause_ms}),
+    )
 }
 
 /// One frame's times in ms: the client's round trip and the stage timings the server reported.
