@@ -17,6 +17,7 @@
 pub mod caution;
 pub mod engine;
 pub mod filter;
+pub mod fold;
 pub mod frame;
 pub mod latency;
 pub mod manifest;

@@ -528,8 +528,13 @@ fn tract_backend(
         engine: TRACT_ENGINE,
         reason: format!("{e:#}"),
     };
+    // tract's copy of the graph with each Conv's BatchNormalization folded into it (`fold.rs`).
+    let mut folded = proto.clone();
+    if let Some(graph) = folded.graph.as_mut() {
+        crate::fold::fold_conv_batchnorm(graph);
+    }
     let inference = || -> Result<InferenceModel, ModelError> {
-        let inference = onnx.model_for_proto_model(proto).map_err(engine_error)?;
+        let inference = onnx.model_for_proto_model(&folded).map_err(engine_error)?;
         if manifest.output.tensor.is_empty() {
             Ok(inference)
         } else {

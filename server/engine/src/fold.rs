@@ -1,0 +1,518 @@
+//! Folding a BatchNormalization that follows a Conv into the Conv's weights and bias, on the parsed graph in
+//! memory, before tract reads it.
+//!
+//! In inference a BatchNormalization is an affine map per channel, `Y = (X - mean) / sqrt(var + epsilon) *
+//! scale + B` (ONNX operator specification, BatchNormalization), so after a Conv it equals the same Conv with
+//! each output channel's weights multiplied by `s = scale / sqrt(var + epsilon)` and its bias replaced by
+//! `(bias - mean) * s + B`. ONNX Runtime makes this rewrite itself ("Conv BatchNorm Fusion", one of the basic
+//! graph optimisations in its documentation, "Graph Optimizations in ONNX Runtime"); tract folds it into
+//! ordinary convolutions but keeps it as a pass of its own after a depthwise one (BENCHMARKS.md section 1).
+//! The model file, and the SHA-256 a deployment pins, are not touched: only the tract engine's copy of the
+//! graph is rewritten, and the reference checks hold tract's outputs to Python onnxruntime's as before.
+
+use std::collections::{HashMap, HashSet};
+
+use tract_onnx::pb;
+
+/// ONNX's FLOAT element type.
+const FLOAT: i32 = 1;
+/// BatchNormalization's default epsilon (ONNX operator specification).
+const DEFAULT_EPSILON: f32 = 1e-5;
+
+/// Folds every BatchNormalization (inference mode) whose input is the only use of a Conv's output, when the
+/// weights, the bias and the normalisation's four vectors are float initializers stored in the file. Returns
+/// how many were folded. A graph with subgraphs (If, Loop, Scan) is left as it is, as is any pattern that does
+/// not match exactly.
+pub fn fold_conv_batchnorm(graph: &mut pb::GraphProto) -> usize {
+    let has_subgraphs = graph.node.iter().any(|n| {
+        n.attribute
+            .iter()
+            .any(|a| a.g.is_some() || !a.graphs.is_empty())
+    });
+    if has_subgraphs {
+        return 0;
+    }
+    let mut uses: HashMap<&str, usize> = HashMap::new();
+    for name in graph.node.iter().flat_map(|n| n.input.iter()) {
+        *uses.entry(name.as_str()).or_default() += 1;
+    }
+    for output in &graph.output {
+        *uses.entry(output.name.as_str()).or_default() += 1;
+    }
+    let producer: HashMap<&str, usize> = graph
+        .node
+        .iter()
+        .enumerate()
+        .flat_map(|(i, n)| n.output.iter().map(move |o| (o.as_str(), i)))
+        .collect();
+    let initializer: HashMap<&str, usize> = graph
+        .initializer
+        .iter()
+        .enumerate()
+        .map(|(i, t)| (t.name.as_str(), i))
+        .collect();
+
+    // (conv index, bn index, folded weights, folded bias)
+    let folds: Vec<(usize, usize, pb::TensorProto, pb::TensorProto)> = graph
+        .node
+        .iter()
+        .enumerate()
+        .filter_map(|(b, bn)| {
+            let (c, w, bias) = folded(graph, bn, &uses, &producer, &initializer)?;
+            Some((c, b, w, bias))
+        })
+        .collect();
+    if folds.is_empty() {
+        return 0;
+    }
+
+    let mut taken: HashSet<String> = graph
+        .initializer
+        .iter()
+        .map(|t| t.name.clone())
+        .chain(graph.node.iter().flat_map(|n| n.output.iter().cloned()))
+        .chain(graph.input.iter().map(|i| i.name.clone()))
+        .collect();
+    let mut fresh = |base: String| {
+        let mut name = base.clone();
+        let mut n = 1;
+        while taken.contains(&name) {
+            n += 1;
+            name = format!("{base}.{n}");
+        }
+        taken.insert(name.clone());
+        name
+    };
+    let count = folds.len();
+    let mut dropped = HashSet::new();
+    for (c, b, mut w, mut bias) in folds {
+        let out = graph.node[b].output[0].clone();
+        w.name = fresh(format!("{out}.folded_weight"));
+        bias.name = fresh(format!("{out}.folded_bias"));
+        let conv = &mut graph.node[c];
+        conv.input.truncate(1);
+        conv.input.push(w.name.clone());
+        conv.input.push(bias.name.clone());
+        conv.output[0] = out;
+        graph.initializer.push(w);
+        graph.initializer.push(bias);
+        dropped.insert(b);
+    }
+    let mut index = 0;
+    graph.node.retain(|_| {
+        index += 1;
+        !dropped.contains(&(index - 1))
+    });
+    // Initializers nothing reads any more (the old weights, biases and statistics) go too, unless the graph
+    // also declares them as inputs or outputs.
+    let read: HashSet<&str> = graph
+        .node
+        .iter()
+        .flat_map(|n| n.input.iter().map(String::as_str))
+        .chain(graph.input.iter().map(|i| i.name.as_str()))
+        .chain(graph.output.iter().map(|o| o.name.as_str()))
+        .collect();
+    let keep: Vec<bool> = graph
+        .initializer
+        .iter()
+        .map(|t| read.contains(t.name.as_str()))
+        .collect();
+    let mut keep = keep.into_iter();
+    graph.initializer.retain(|_| keep.next().unwrap_or(true));
+    count
+}
+
+/// For a BatchNormalization that can be folded: its Conv's index and the Conv's new weights and bias
+/// (names left empty).
+fn folded(
+    graph: &pb::GraphProto,
+    bn: &pb::NodeProto,
+    uses: &HashMap<&str, usize>,
+    producer: &HashMap<&str, usize>,
+    initializer: &HashMap<&str, usize>,
+) -> Option<(usize, pb::TensorProto, pb::TensorProto)> {
+    if bn.op_type != "BatchNormalization" || !standard_domain(&bn.domain) {
+        return None;
+    }
+    if bn.input.len() != 5 || bn.output.iter().skip(1).any(|o| !o.is_empty()) {
+        return None;
+    }
+    let epsilon = inference_epsilon(bn)?;
+    let x = bn.input[0].as_str();
+    if uses.get(x) != Some(&1) {
+        return None;
+    }
+    let c = *producer.get(x)?;
+    let conv = &graph.node[c];
+    if conv.op_type != "Conv" || !standard_domain(&conv.domain) || conv.output.len() != 1 {
+        return None;
+    }
+    let floats = |name: &str| -> Option<(Vec<i64>, Vec<f32>)> {
+        let t = &graph.initializer[*initializer.get(name)?];
+        float_values(t).map(|v| (t.dims.clone(), v))
+    };
+    let (w_dims, w) = floats(conv.input.get(1)?)?;
+    let m = usize::try_from(*w_dims.first()?).ok()?;
+    if m == 0 || w.len() % m != 0 {
+        return None;
+    }
+    let bias = match conv.input.get(2).filter(|n| !n.is_empty()) {
+        Some(name) => floats(name)?.1,
+        None => vec![0.0; m],
+    };
+    let scale = floats(&bn.input[1])?.1;
+    let shift = floats(&bn.input[2])?.1;
+    let mean = floats(&bn.input[3])?.1;
+    let var = floats(&bn.input[4])?.1;
+    if [&bias, &scale, &shift, &mean, &var]
+        .iter()
+        .any(|v| v.len() != m)
+    {
+        return None;
+    }
+    let per_channel = w.len() / m;
+    let mut folded_w = Vec::with_capacity(w.len());
+    let mut folded_b = Vec::with_capacity(m);
+    for k in 0..m {
+        // The factor and the bias in double precision, each value rounded to float once.
+        let s = scale[k] as f64 / (var[k] as f64 + epsilon as f64).sqrt();
+        if !s.is_finite() {
+            return None;
+        }
+        folded_w.extend(
+            w[k * per_channel..(k + 1) * per_channel]
+                .iter()
+                .map(|&v| (v as f64 * s) as f32),
+        );
+        folded_b.push(((bias[k] as f64 - mean[k] as f64) * s + shift[k] as f64) as f32);
+    }
+    let tensor = |dims: Vec<i64>, values: Vec<f32>| pb::TensorProto {
+        dims,
+        data_type: FLOAT,
+        float_data: values,
+        ..Default::default()
+    };
+    Some((
+        c,
+        tensor(w_dims, folded_w),
+        tensor(vec![m as i64], folded_b),
+    ))
+}
+
+fn standard_domain(domain: &str) -> bool {
+    domain.is_empty() || domain == "ai.onnx"
+}
+
+/// The epsilon of a BatchNormalization that normalises with its stored statistics, or None for training mode
+/// or the attributes of opsets before 9 (`spatial`, `is_test`, `consumed_inputs`), which are left alone.
+fn inference_epsilon(bn: &pb::NodeProto) -> Option<f32> {
+    let mut epsilon = DEFAULT_EPSILON;
+    for a in &bn.attribute {
+        match a.name.as_str() {
+            "epsilon" => epsilon = a.f,
+            "momentum" => {}
+            "training_mode" if a.i == 0 => {}
+            _ => return None,
+        }
+    }
+    (epsilon.is_finite() && epsilon >= 0.0).then_some(epsilon)
+}
+
+/// A float initializer's values, when they are stored in the file (not external) and match its shape.
+fn float_values(t: &pb::TensorProto) -> Option<Vec<f32>> {
+    if t.data_type != FLOAT || t.data_location == Some(1) || t.segment.is_some() {
+        return None;
+    }
+    let len = t
+        .dims
+        .iter()
+        .try_fold(1usize, |n, &d| n.checked_mul(usize::try_from(d).ok()?))?;
+    let values = if !t.raw_data.is_empty() {
+        if t.raw_data.len() != len.checked_mul(4)? {
+            return None;
+        }
+        t.raw_data
+            .chunks_exact(4)
+            .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+            .collect()
+    } else {
+        t.float_data.clone()
+    };
+    (values.len() == len).then_some(values)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use tract_onnx::prelude::*;
+
+    fn node(
+        op: &str,
+        inputs: &[&str],
+        output: &str,
+        attributes: Vec<pb::AttributeProto>,
+    ) -> pb::NodeProto {
+        pb::NodeProto {
+            op_type: op.into(),
+            name: output.into(),
+            input: inputs.iter().map(|s| s.to_string()).collect(),
+            output: vec![output.into()],
+            attribute: attributes,
+            ..Default::default()
+        }
+    }
+
+    fn ints(name: &str, values: &[i64]) -> pb::AttributeProto {
+        pb::AttributeProto {
+            name: name.into(),
+            r#type: pb::attribute_proto::AttributeType::Ints as i32,
+            ints: values.to_vec(),
+            ..Default::default()
+        }
+    }
+
+    fn int(name: &str, value: i64) -> pb::AttributeProto {
+        pb::AttributeProto {
+            name: name.into(),
+            r#type: pb::attribute_proto::AttributeType::Int as i32,
+            i: value,
+            ..Default::default()
+        }
+    }
+
+    fn float(name: &str, value: f32) -> pb::AttributeProto {
+        pb::AttributeProto {
+            name: name.into(),
+            r#type: pb::attribute_proto::AttributeType::Float as i32,
+            f: value,
+            ..Default::default()
+        }
+    }
+
+    fn init(name: &str, dims: &[i64], values: Vec<f32>, raw: bool) -> pb::TensorProto {
+        let mut t = pb::TensorProto {
+            name: name.into(),
+            dims: dims.to_vec(),
+            data_type: FLOAT,
+            ..Default::default()
+        };
+        if raw {
+            t.raw_data = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+        } else {
+            t.float_data = values;
+        }
+        t
+    }
+
+    fn value_info(name: &str, dims: &[i64]) -> pb::ValueInfoProto {
+        use pb::tensor_shape_proto::{Dimension, dimension};
+        pb::ValueInfoProto {
+            name: name.into(),
+            r#type: Some(pb::TypeProto {
+                value: Some(pb::type_proto::Value::TensorType(pb::type_proto::Tensor {
+                    elem_type: FLOAT,
+                    shape: Some(pb::TensorShapeProto {
+                        dim: dims
+                            .iter()
+                            .map(|&d| Dimension {
+                                value: Some(dimension::Value::DimValue(d)),
+                                ..Default::default()
+                            })
+                            .collect(),
+                    }),
+                })),
+                ..Default::default()
+            }),
+            ..Default::default()
+        }
+    }
+
+    /// Deterministic values in [-1, 1) (a linear congruential sequence; test data only).
+    fn values(n: usize, seed: u64) -> Vec<f32> {
+        let mut state = seed;
+        (0..n)
+            .map(|_| {
+                state = state
+                    .wrapping_mul(6364136223846793005)
+                    .wrapping_add(1442695040888963407);
+                ((state >> 40) as f32 / (1u64 << 24) as f32) * 2.0 - 1.0
+            })
+            .collect()
+    }
+
+    const C: usize = 3;
+    const H: usize = 5;
+
+    /// x [1,3,5,5] → depthwise 3x3 Conv (pads 1, with a bias when asked) → BatchNormalization → y.
+    fn depthwise_bn(with_bias: bool, raw: bool) -> pb::ModelProto {
+        let mut conv_inputs = vec!["x", "w"];
+        let mut initializer = vec![init("w", &[3, 1, 3, 3], values(27, 1), raw)];
+        if with_bias {
+            conv_inputs.push("cb");
+            initializer.push(init("cb", &[3], values(3, 2), raw));
+        }
+        let var: Vec<f32> = values(3, 6).iter().map(|v| v.abs() + 0.5).collect();
+        initializer.extend([
+            init("scale", &[3], values(3, 3), raw),
+            init("shift", &[3], values(3, 4), raw),
+            init("mean", &[3], values(3, 5), raw),
+            init("var", &[3], var, raw),
+        ]);
+        let conv = node(
+            "Conv",
+            &conv_inputs,
+            "c",
+            vec![
+                ints("kernel_shape", &[3, 3]),
+                ints("pads", &[1, 1, 1, 1]),
+                int("group", 3),
+            ],
+        );
+        let bn = node(
+            "BatchNormalization",
+            &["c", "scale", "shift", "mean", "var"],
+            "y",
+            vec![float("epsilon", 1e-3)],
+        );
+        pb::ModelProto {
+            ir_version: 8,
+            opset_import: vec![pb::OperatorSetIdProto {
+                domain: String::new(),
+                version: 15,
+            }],
+            graph: Some(pb::GraphProto {
+                node: vec![conv, bn],
+                initializer,
+                input: vec![value_info("x", &[1, C as i64, H as i64, H as i64])],
+                output: vec![value_info("y", &[1, C as i64, H as i64, H as i64])],
+                ..Default::default()
+            }),
+            ..Default::default()
+        }
+    }
+
+    fn run(model: &pb::ModelProto, x: &[f32]) -> Vec<f32> {
+        let plan = tract_onnx::onnx()
+            .model_for_proto_model(model)
+            .and_then(|m| m.into_optimized())
+            .and_then(|m| m.into_runnable())
+            .expect("the test graph loads");
+        let input = tract_ndarray::Array4::from_shape_vec((1, C, H, H), x.to_vec()).expect("shape");
+        let out = plan
+            .run(tvec!(Tensor::from(input).into()))
+            .expect("the test graph runs");
+        out[0]
+            .to_plain_array_view::<f32>()
+            .expect("float output")
+            .iter()
+            .copied()
+            .collect()
+    }
+
+    /// The unfolded graph computed straight from the ONNX operator specification's definitions of Conv
+    /// (cross-correlation, zero padding) and BatchNormalization, in double precision.
+    fn by_the_specification(model: &pb::ModelProto, x: &[f32]) -> Vec<f32> {
+        let graph = model.graph.as_ref().expect("graph");
+        let get = |name: &str| {
+            graph
+                .initializer
+                .iter()
+                .find(|t| t.name == name)
+                .and_then(float_values)
+                .expect("initializer")
+        };
+        let (w, scale, shift, mean, var) = (
+            get("w"),
+            get("scale"),
+            get("shift"),
+            get("mean"),
+            get("var"),
+        );
+        let bias = if graph.initializer.iter().any(|t| t.name == "cb") {
+            get("cb")
+        } else {
+            vec![0.0; C]
+        };
+        let mut y = Vec::with_capacity(C * H * H);
+        for c in 0..C {
+            for i in 0..H as i64 {
+                for j in 0..H as i64 {
+                    let mut acc = bias[c] as f64;
+                    for di in 0..3i64 {
+                        for dj in 0..3i64 {
+                            let (r, s) = (i + di - 1, j + dj - 1);
+                            if (0..H as i64).contains(&r) && (0..H as i64).contains(&s) {
+                                acc += w[c * 9 + (di * 3 + dj) as usize] as f64
+                                    * x[c * H * H + r as usize * H + s as usize] as f64;
+                            }
+                        }
+                    }
+                    let n = (acc - mean[c] as f64) / (var[c] as f64 + 1e-3f32 as f64).sqrt()
+                        * scale[c] as f64
+                        + shift[c] as f64;
+                    y.push(n as f32);
+                }
+            }
+        }
+        y
+    }
+
+    fn max_difference(a: &[f32], b: &[f32]) -> f32 {
+        assert_eq!(a.len(), b.len());
+        a.iter()
+            .zip(b)
+            .map(|(p, q)| (p - q).abs())
+            .fold(0.0, f32::max)
+    }
+
+    #[test]
+    fn a_depthwise_conv_and_its_normalisation_become_one_conv_with_the_same_outputs() {
+        for (with_bias, raw) in [(false, true), (true, false), (true, true)] {
+            let original = depthwise_bn(with_bias, raw);
+            let mut folded = original.clone();
+            let graph = folded.graph.as_mut().expect("graph");
+            assert_eq!(fold_conv_batchnorm(graph), 1);
+            assert_eq!(graph.node.len(), 1, "only the Conv is left");
+            assert_eq!(graph.node[0].output, vec!["y".to_string()]);
+            let names: Vec<&str> = graph.initializer.iter().map(|t| t.name.as_str()).collect();
+            assert_eq!(
+                names,
+                vec!["y.folded_weight", "y.folded_bias"],
+                "old weights dropped"
+            );
+            let x = values(C * H * H, 7);
+            let expected = by_the_specification(&original, &x);
+            // The ONNX specification's formulas in double precision against float arithmetic: a few ulps
+            // of values of order 1.
+            assert!(max_difference(&run(&folded, &x), &expected) < 1e-5);
+            assert!(max_difference(&run(&original, &x), &expected) < 1e-5);
+        }
+    }
+
+    #[test]
+    fn patterns_that_do_not_match_exactly_are_left_alone() {
+        // The Conv's output is also a graph output.
+        let mut model = depthwise_bn(true, false);
+        let graph = model.graph.as_mut().expect("graph");
+        graph.output.push(value_info("c", &[1, 3, 5, 5]));
+        assert_eq!(fold_conv_batchnorm(graph), 0);
+        assert_eq!(graph.node.len(), 2);
+        // Training mode normalises with the batch's own statistics.
+        let mut model = depthwise_bn(true, false);
+        let graph = model.graph.as_mut().expect("graph");
+        graph.node[1].attribute.push(int("training_mode", 1));
+        assert_eq!(fold_conv_batchnorm(graph), 0);
+        // Statistics that are not initializers (here, a graph input).
+        let mut model = depthwise_bn(true, false);
+        let graph = model.graph.as_mut().expect("graph");
+        graph.initializer.retain(|t| t.name != "mean");
+        graph.input.push(value_info("mean", &[3]));
+        assert_eq!(fold_conv_batchnorm(graph), 0);
+        // A weight whose stored length does not match its shape.
+        let mut model = depthwise_bn(false, true);
+        let graph = model.graph.as_mut().expect("graph");
+        graph.initializer[0].raw_data.truncate(8);
+        assert_eq!(fold_conv_batchnorm(graph), 0);
+        assert_eq!(graph.initializer.len(), 5, "nothing dropped");
+    }
+}
