@@ -20,10 +20,11 @@ const FLOAT: i32 = 1;
 const DEFAULT_EPSILON: f32 = 1e-5;
 
 /// Folds every BatchNormalization (inference mode) whose input is the only use of a Conv's output, when the
-/// weights, the bias and the normalisation's four vectors are float initializers stored in the file. Returns
-/// how many were folded. A graph with subgraphs (If, Loop, Scan) is left as it is, as is any pattern that does
-/// not match exactly.
-pub fn fold_conv_batchnorm(graph: &mut pb::GraphProto) -> usize {
+/// weights, the bias and the normalisation's four vectors are float initializers stored in the file. A tensor
+/// named in `read_by_name` (one the manifest reads as the output, say) counts as used and keeps its producer.
+/// Returns how many were folded. A graph with subgraphs (If, Loop, Scan) is left as it is, as is any pattern
+/// that does not match exactly.
+pub fn fold_conv_batchnorm(graph: &mut pb::GraphProto, read_by_name: &[&str]) -> usize {
     let has_subgraphs = graph.node.iter().any(|n| {
         n.attribute
             .iter()
@@ -36,8 +37,13 @@ pub fn fold_conv_batchnorm(graph: &mut pb::GraphProto) -> usize {
     for name in graph.node.iter().flat_map(|n| n.input.iter()) {
         *uses.entry(name.as_str()).or_default() += 1;
     }
-    for output in &graph.output {
-        *uses.entry(output.name.as_str()).or_default() += 1;
+    for name in graph
+        .output
+        .iter()
+        .map(|o| o.name.as_str())
+        .chain(read_by_name.iter().copied())
+    {
+        *uses.entry(name).or_default() += 1;
     }
     let producer: HashMap<&str, usize> = graph
         .node
@@ -471,7 +477,7 @@ mod tests {
             let original = depthwise_bn(with_bias, raw);
             let mut folded = original.clone();
             let graph = folded.graph.as_mut().expect("graph");
-            assert_eq!(fold_conv_batchnorm(graph), 1);
+            assert_eq!(fold_conv_batchnorm(graph, &[]), 1);
             assert_eq!(graph.node.len(), 1, "only the Conv is left");
             assert_eq!(graph.node[0].output, vec!["y".to_string()]);
             let names: Vec<&str> = graph.initializer.iter().map(|t| t.name.as_str()).collect();
@@ -495,24 +501,28 @@ mod tests {
         let mut model = depthwise_bn(true, false);
         let graph = model.graph.as_mut().expect("graph");
         graph.output.push(value_info("c", &[1, 3, 5, 5]));
-        assert_eq!(fold_conv_batchnorm(graph), 0);
+        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
         assert_eq!(graph.node.len(), 2);
+        // The Conv's output is read by name (as a manifest's output tensor would be).
+        let mut model = depthwise_bn(true, false);
+        let graph = model.graph.as_mut().expect("graph");
+        assert_eq!(fold_conv_batchnorm(graph, &["c"]), 0);
         // Training mode normalises with the batch's own statistics.
         let mut model = depthwise_bn(true, false);
         let graph = model.graph.as_mut().expect("graph");
         graph.node[1].attribute.push(int("training_mode", 1));
-        assert_eq!(fold_conv_batchnorm(graph), 0);
+        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
         // Statistics that are not initializers (here, a graph input).
         let mut model = depthwise_bn(true, false);
         let graph = model.graph.as_mut().expect("graph");
         graph.initializer.retain(|t| t.name != "mean");
         graph.input.push(value_info("mean", &[3]));
-        assert_eq!(fold_conv_batchnorm(graph), 0);
+        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
         // A weight whose stored length does not match its shape.
         let mut model = depthwise_bn(false, true);
         let graph = model.graph.as_mut().expect("graph");
         graph.initializer[0].raw_data.truncate(8);
-        assert_eq!(fold_conv_batchnorm(graph), 0);
+        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
         assert_eq!(graph.initializer.len(), 5, "nothing dropped");
     }
 }

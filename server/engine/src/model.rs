@@ -514,8 +514,9 @@ fn contain_panic<T>(
     })
 }
 
-/// Prepares the tract plan: typed with a symbolic batch when the graph has one (so other batch sizes can be
-/// derived), concretised to batch 1, optimised, and run on a private thread pool when `threads` > 1.
+/// Prepares the tract plan: each Conv's BatchNormalization folded in (`fold.rs`), typed with a symbolic batch
+/// when the graph has one (so other batch sizes can be derived), concretised to batch 1, optimised, and run on
+/// a private thread pool when `threads` > 1.
 fn tract_backend(
     onnx: &tract_onnx::Onnx,
     proto: &pb::ModelProto,
@@ -531,7 +532,7 @@ fn tract_backend(
     // tract's copy of the graph with each Conv's BatchNormalization folded into it (`fold.rs`).
     let mut folded = proto.clone();
     if let Some(graph) = folded.graph.as_mut() {
-        crate::fold::fold_conv_batchnorm(graph);
+        crate::fold::fold_conv_batchnorm(graph, &[manifest.output.tensor.as_str()]);
     }
     let inference = || -> Result<InferenceModel, ModelError> {
         let inference = onnx.model_for_proto_model(&folded).map_err(engine_error)?;
