@@ -5,6 +5,7 @@
 //! connection cost on this host; framewise's overhead above it is the server's own.
 
 use std::net::SocketAddr;
+use std::os::unix::fs::FileTypeExt;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
@@ -22,9 +23,6 @@ struct Floor {
     pause: Duration,
 }
 
-/// Messages a session may have waiting for the client, as in framewise's sessions.
-const BUFFER: usize = 4;
-
 #[tonic::async_trait]
 impl FrameAnalysis for Floor {
     type ConverseStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
@@ -34,7 +32,8 @@ impl FrameAnalysis for Floor {
         request: Request<Streaming<pb::SessionInput>>,
     ) -> Result<Response<Self::ConverseStream>, Status> {
         let mut inbound = request.into_inner();
-        let (outbox, answers) = mpsc::channel(BUFFER);
+        // Answers a session may have waiting for the client, as in framewise's sessions.
+        let (outbox, answers) = mpsc::channel(framewise_server::config::ANSWER_BUFFER);
         let (classes, pause) = (self.classes, self.pause);
         // One task per session reads, answers and hands the answer to the response stream, as framewise's
         // every-frame sessions do.
@@ -48,14 +47,21 @@ impl FrameAnalysis for Floor {
                         })
                     }
                     Some(pb::session_input::Item::Frame(frame)) => {
-                        // A pause stands in for an inference: the runtime's threads go idle as they do
-                        // while a worker infers. Its measured length is reported as the inference time,
-                        // so that the client subtracts it as it does framewise's.
+                        // A pause stands in for an inference, on a thread of its own as framewise's
+                        // workers are: the runtime's threads go idle meanwhile, and the hand-back wakes
+                        // them. Its length, measured on that thread, is reported as the inference time so
+                        // that the client subtracts it as it does framewise's; the hand-back is not.
                         let mut paused_us = 0;
                         if !pause.is_zero() {
-                            let start = Instant::now();
-                            tokio::time::sleep(pause).await;
-                            paused_us = start.elapsed().as_micros() as u64;
+                            let paused = tokio::task::spawn_blocking(move || {
+                                let start = Instant::now();
+                                std::thread::sleep(pause);
+                                start.elapsed().as_micros() as u64
+                            });
+                            match paused.await {
+                                Ok(us) => paused_us = us,
+                                Err(_) => break,
+                            }
                         }
                         pb::session_output::Item::Answer(pb::Answer {
                             seq: frame.seq,
@@ -132,7 +138,10 @@ impl FloorServer {
             .max_encoding_message_size(max);
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
         let addr = listener.local_addr()?;
-        let _ = std::fs::remove_file(socket);
+        // A socket left by an earlier run goes; anything else at that path is refused by the bind.
+        if std::fs::symlink_metadata(socket).is_ok_and(|m| m.file_type().is_socket()) {
+            let _ = std::fs::remove_file(socket);
+        }
         let unix = tokio::net::UnixListener::bind(socket)
             .with_context(|| format!("binding {}", socket.display()))?;
         let stop = CancellationToken::new();
@@ -160,12 +169,27 @@ impl FloorServer {
         })
     }
 
-    pub async fn stop(self) -> Result<()> {
+    /// Stops both listeners, waits for them and removes the socket.
+    pub async fn stop(mut self) -> Result<()> {
         self.stop.cancel();
-        for task in self.tasks {
-            task.await??;
+        let mut first_error = Ok(());
+        for task in std::mem::take(&mut self.tasks) {
+            let ended = match task.await {
+                Ok(served) => served.map_err(anyhow::Error::from),
+                Err(e) => Err(e.into()),
+            };
+            if first_error.is_ok() {
+                first_error = ended;
+            }
         }
+        first_error
+    }
+}
+
+/// A floor dropped on an error path stops serving and leaves no socket behind.
+impl Drop for FloorServer {
+    fn drop(&mut self) {
+        self.stop.cancel();
         let _ = std::fs::remove_file(&self.socket);
-        Ok(())
     }
 }

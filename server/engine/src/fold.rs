@@ -18,13 +18,28 @@ use tract_onnx::pb;
 const FLOAT: i32 = 1;
 /// BatchNormalization's default epsilon (ONNX operator specification).
 const DEFAULT_EPSILON: f32 = 1e-5;
+/// The first opset whose BatchNormalization has neither `is_test` nor `spatial` (ONNX operator changelog).
+const MIN_OPSET: i64 = 9;
 
 /// Folds every BatchNormalization (inference mode) whose input is the only use of a Conv's output, when the
 /// weights, the bias and the normalisation's four vectors are float initializers stored in the file. A tensor
 /// named in `read_by_name` (one the manifest reads as the output, say) counts as used and keeps its producer.
-/// Returns how many were folded. A graph with subgraphs (If, Loop, Scan) is left as it is, as is any pattern
-/// that does not match exactly.
-pub fn fold_conv_batchnorm(graph: &mut pb::GraphProto, read_by_name: &[&str]) -> usize {
+/// Returns how many were folded. A graph with subgraphs (If, Loop, Scan), or of an opset before 9 (whose
+/// BatchNormalization had training-mode and per-element variants), is left as it is, as is any pattern that
+/// does not match exactly.
+pub fn fold_conv_batchnorm(model: &mut pb::ModelProto, read_by_name: &[&str]) -> usize {
+    let opset = model
+        .opset_import
+        .iter()
+        .filter(|o| standard_domain(&o.domain))
+        .map(|o| o.version)
+        .max();
+    if opset.is_none_or(|v| v < MIN_OPSET) {
+        return 0;
+    }
+    let Some(graph) = model.graph.as_mut() else {
+        return 0;
+    };
     let has_subgraphs = graph.node.iter().any(|n| {
         n.attribute
             .iter()
@@ -72,12 +87,22 @@ pub fn fold_conv_batchnorm(graph: &mut pb::GraphProto, read_by_name: &[&str]) ->
         return 0;
     }
 
+    // Every name the graph uses anywhere, so that a new one cannot meet an old one.
     let mut taken: HashSet<String> = graph
         .initializer
         .iter()
         .map(|t| t.name.clone())
         .chain(graph.node.iter().flat_map(|n| n.output.iter().cloned()))
+        .chain(graph.node.iter().flat_map(|n| n.input.iter().cloned()))
         .chain(graph.input.iter().map(|i| i.name.clone()))
+        .chain(graph.output.iter().map(|o| o.name.clone()))
+        .chain(graph.value_info.iter().map(|v| v.name.clone()))
+        .chain(
+            graph
+                .sparse_initializer
+                .iter()
+                .filter_map(|t| t.values.as_ref().map(|v| v.name.clone())),
+        )
         .collect();
     let mut fresh = |base: String| {
         let mut name = base.clone();
@@ -140,7 +165,10 @@ fn folded(
     if bn.op_type != "BatchNormalization" || !standard_domain(&bn.domain) {
         return None;
     }
-    if bn.input.len() != 5 || bn.output.iter().skip(1).any(|o| !o.is_empty()) {
+    if bn.input.len() != 5
+        || bn.output.first().is_none_or(|o| o.is_empty())
+        || bn.output.iter().skip(1).any(|o| !o.is_empty())
+    {
         return None;
     }
     let epsilon = inference_epsilon(bn)?;
@@ -159,17 +187,19 @@ fn folded(
     };
     let (w_dims, w) = floats(conv.input.get(1)?)?;
     let m = usize::try_from(*w_dims.first()?).ok()?;
-    if m == 0 || w.len() % m != 0 {
+    // The weights hold at least one value per output channel; every length below is checked against m
+    // before anything of length m is made, so a file's dimensions alone never size an allocation.
+    if m == 0 || w.len() < m || w.len() % m != 0 {
         return None;
     }
-    let bias = match conv.input.get(2).filter(|n| !n.is_empty()) {
-        Some(name) => floats(name)?.1,
-        None => vec![0.0; m],
-    };
     let scale = floats(&bn.input[1])?.1;
     let shift = floats(&bn.input[2])?.1;
     let mean = floats(&bn.input[3])?.1;
     let var = floats(&bn.input[4])?.1;
+    let bias = match conv.input.get(2).filter(|n| !n.is_empty()) {
+        Some(name) => floats(name)?.1,
+        None => vec![0.0; m],
+    };
     if [&bias, &scale, &shift, &mean, &var]
         .iter()
         .any(|v| v.len() != m)
@@ -209,15 +239,20 @@ fn standard_domain(domain: &str) -> bool {
     domain.is_empty() || domain == "ai.onnx"
 }
 
-/// The epsilon of a BatchNormalization that normalises with its stored statistics, or None for training mode
-/// or the attributes of opsets before 9 (`spatial`, `is_test`, `consumed_inputs`), which are left alone.
+/// The epsilon of a BatchNormalization that normalises with its stored statistics, or None for training mode,
+/// any other attribute, an attribute given twice or of the wrong type: those are left to tract as they are.
 fn inference_epsilon(bn: &pb::NodeProto) -> Option<f32> {
+    use pb::attribute_proto::AttributeType;
     let mut epsilon = DEFAULT_EPSILON;
+    let mut seen = HashSet::new();
     for a in &bn.attribute {
-        match a.name.as_str() {
-            "epsilon" => epsilon = a.f,
-            "momentum" => {}
-            "training_mode" if a.i == 0 => {}
+        if !seen.insert(a.name.as_str()) {
+            return None;
+        }
+        match (a.name.as_str(), a.r#type) {
+            ("epsilon", t) if t == AttributeType::Float as i32 => epsilon = a.f,
+            ("momentum", t) if t == AttributeType::Float as i32 => {}
+            ("training_mode", t) if t == AttributeType::Int as i32 && a.i == 0 => {}
             _ => return None,
         }
     }
@@ -346,40 +381,80 @@ mod tests {
             .collect()
     }
 
+    /// Input channels and size.
     const C: usize = 3;
     const H: usize = 5;
+    const EPSILON: f32 = 1e-3;
 
-    /// x [1,3,5,5] → depthwise 3x3 Conv (pads 1, with a bias when asked) → BatchNormalization → y.
-    fn depthwise_bn(with_bias: bool, raw: bool) -> pb::ModelProto {
-        let mut conv_inputs = vec!["x", "w"];
-        let mut initializer = vec![init("w", &[3, 1, 3, 3], values(27, 1), raw)];
-        if with_bias {
-            conv_inputs.push("cb");
-            initializer.push(init("cb", &[3], values(3, 2), raw));
+    /// One Conv (3x3, pads 1) and its BatchNormalization: `group` groups, `m` output channels.
+    #[derive(Clone, Copy)]
+    struct Layer {
+        group: usize,
+        m: usize,
+        with_bias: bool,
+    }
+
+    /// x [1,3,5,5] → (Conv → BatchNormalization) per layer → y, weights stored raw or as float_data.
+    fn conv_bn(layers: &[Layer], raw: bool) -> pb::ModelProto {
+        let (mut nodes, mut initializer) = (Vec::new(), Vec::new());
+        let (mut x, mut cin) = ("x".to_string(), C);
+        for (i, l) in layers.iter().enumerate() {
+            let seed = 10 * i as u64;
+            let name = |base: &str| format!("{base}{i}");
+            let per_group = cin / l.group;
+            initializer.push(init(
+                &name("w"),
+                &[l.m as i64, per_group as i64, 3, 3],
+                values(l.m * per_group * 9, seed + 1),
+                raw,
+            ));
+            let mut conv_inputs = vec![x.clone(), name("w")];
+            if l.with_bias {
+                conv_inputs.push(name("cb"));
+                initializer.push(init(&name("cb"), &[l.m as i64], values(l.m, seed + 2), raw));
+            }
+            let var: Vec<f32> = values(l.m, seed + 6)
+                .iter()
+                .map(|v| v.abs() + 0.5)
+                .collect();
+            initializer.extend([
+                init(&name("scale"), &[l.m as i64], values(l.m, seed + 3), raw),
+                init(&name("shift"), &[l.m as i64], values(l.m, seed + 4), raw),
+                init(&name("mean"), &[l.m as i64], values(l.m, seed + 5), raw),
+                init(&name("var"), &[l.m as i64], var, raw),
+            ]);
+            let inputs: Vec<&str> = conv_inputs.iter().map(String::as_str).collect();
+            nodes.push(node(
+                "Conv",
+                &inputs,
+                &name("c"),
+                vec![
+                    ints("kernel_shape", &[3, 3]),
+                    ints("pads", &[1, 1, 1, 1]),
+                    int("group", l.group as i64),
+                ],
+            ));
+            let y = if i + 1 == layers.len() {
+                "y".to_string()
+            } else {
+                name("y")
+            };
+            let bn_inputs = [
+                name("c"),
+                name("scale"),
+                name("shift"),
+                name("mean"),
+                name("var"),
+            ];
+            let bn_inputs: Vec<&str> = bn_inputs.iter().map(String::as_str).collect();
+            nodes.push(node(
+                "BatchNormalization",
+                &bn_inputs,
+                &y,
+                vec![float("epsilon", EPSILON)],
+            ));
+            (x, cin) = (y, l.m);
         }
-        let var: Vec<f32> = values(3, 6).iter().map(|v| v.abs() + 0.5).collect();
-        initializer.extend([
-            init("scale", &[3], values(3, 3), raw),
-            init("shift", &[3], values(3, 4), raw),
-            init("mean", &[3], values(3, 5), raw),
-            init("var", &[3], var, raw),
-        ]);
-        let conv = node(
-            "Conv",
-            &conv_inputs,
-            "c",
-            vec![
-                ints("kernel_shape", &[3, 3]),
-                ints("pads", &[1, 1, 1, 1]),
-                int("group", 3),
-            ],
-        );
-        let bn = node(
-            "BatchNormalization",
-            &["c", "scale", "shift", "mean", "var"],
-            "y",
-            vec![float("epsilon", 1e-3)],
-        );
         pb::ModelProto {
             ir_version: 8,
             opset_import: vec![pb::OperatorSetIdProto {
@@ -387,13 +462,21 @@ mod tests {
                 version: 15,
             }],
             graph: Some(pb::GraphProto {
-                node: vec![conv, bn],
+                node: nodes,
                 initializer,
                 input: vec![value_info("x", &[1, C as i64, H as i64, H as i64])],
-                output: vec![value_info("y", &[1, C as i64, H as i64, H as i64])],
+                output: vec![value_info("y", &[1, cin as i64, H as i64, H as i64])],
                 ..Default::default()
             }),
             ..Default::default()
+        }
+    }
+
+    fn depthwise(with_bias: bool) -> Layer {
+        Layer {
+            group: C,
+            m: C,
+            with_bias,
         }
     }
 
@@ -416,10 +499,10 @@ mod tests {
     }
 
     /// The unfolded graph computed straight from the ONNX operator specification's definitions of Conv
-    /// (cross-correlation, zero padding) and BatchNormalization, in double precision.
-    fn by_the_specification(model: &pb::ModelProto, x: &[f32]) -> Vec<f32> {
+    /// (cross-correlation, zero padding, groups) and BatchNormalization, in double precision.
+    fn by_the_specification(model: &pb::ModelProto, layers: &[Layer], x: &[f32]) -> Vec<f32> {
         let graph = model.graph.as_ref().expect("graph");
-        let get = |name: &str| {
+        let get = |name: String| {
             graph
                 .initializer
                 .iter()
@@ -427,40 +510,49 @@ mod tests {
                 .and_then(float_values)
                 .expect("initializer")
         };
-        let (w, scale, shift, mean, var) = (
-            get("w"),
-            get("scale"),
-            get("shift"),
-            get("mean"),
-            get("var"),
-        );
-        let bias = if graph.initializer.iter().any(|t| t.name == "cb") {
-            get("cb")
-        } else {
-            vec![0.0; C]
-        };
-        let mut y = Vec::with_capacity(C * H * H);
-        for c in 0..C {
-            for i in 0..H as i64 {
-                for j in 0..H as i64 {
-                    let mut acc = bias[c] as f64;
-                    for di in 0..3i64 {
-                        for dj in 0..3i64 {
-                            let (r, s) = (i + di - 1, j + dj - 1);
-                            if (0..H as i64).contains(&r) && (0..H as i64).contains(&s) {
-                                acc += w[c * 9 + (di * 3 + dj) as usize] as f64
-                                    * x[c * H * H + r as usize * H + s as usize] as f64;
+        let mut input: Vec<f64> = x.iter().map(|&v| v as f64).collect();
+        let mut cin = C;
+        for (i, l) in layers.iter().enumerate() {
+            let w = get(format!("w{i}"));
+            let [scale, shift, mean, var] =
+                ["scale", "shift", "mean", "var"].map(|n| get(format!("{n}{i}")));
+            let bias = if l.with_bias {
+                get(format!("cb{i}"))
+            } else {
+                vec![0.0; l.m]
+            };
+            let (per_group, m_per_group) = (cin / l.group, l.m / l.group);
+            let mut out = Vec::with_capacity(l.m * H * H);
+            for k in 0..l.m {
+                let first_channel = (k / m_per_group) * per_group;
+                for r in 0..H as i64 {
+                    for s in 0..H as i64 {
+                        let mut acc = bias[k] as f64;
+                        for ci in 0..per_group {
+                            for di in 0..3i64 {
+                                for dj in 0..3i64 {
+                                    let (rr, ss) = (r + di - 1, s + dj - 1);
+                                    if (0..H as i64).contains(&rr) && (0..H as i64).contains(&ss) {
+                                        let wi = ((k * per_group + ci) * 3 + di as usize) * 3
+                                            + dj as usize;
+                                        let xi = ((first_channel + ci) * H + rr as usize) * H
+                                            + ss as usize;
+                                        acc += w[wi] as f64 * input[xi];
+                                    }
+                                }
                             }
                         }
+                        out.push(
+                            (acc - mean[k] as f64) / (var[k] as f64 + EPSILON as f64).sqrt()
+                                * scale[k] as f64
+                                + shift[k] as f64,
+                        );
                     }
-                    let n = (acc - mean[c] as f64) / (var[c] as f64 + 1e-3f32 as f64).sqrt()
-                        * scale[c] as f64
-                        + shift[c] as f64;
-                    y.push(n as f32);
                 }
             }
+            (input, cin) = (out, l.m);
         }
-        y
+        input.iter().map(|&v| v as f32).collect()
     }
 
     fn max_difference(a: &[f32], b: &[f32]) -> f32 {
@@ -471,58 +563,140 @@ mod tests {
             .fold(0.0, f32::max)
     }
 
+    fn initializer_names(model: &pb::ModelProto) -> Vec<&str> {
+        let graph = model.graph.as_ref().expect("graph");
+        graph.initializer.iter().map(|t| t.name.as_str()).collect()
+    }
+
     #[test]
-    fn a_depthwise_conv_and_its_normalisation_become_one_conv_with_the_same_outputs() {
-        for (with_bias, raw) in [(false, true), (true, false), (true, true)] {
-            let original = depthwise_bn(with_bias, raw);
+    fn each_conv_and_its_normalisation_become_one_conv_with_the_same_outputs() {
+        let full = |m, with_bias| Layer {
+            group: 1,
+            m,
+            with_bias,
+        };
+        let cases: [(&[Layer], bool); 5] = [
+            (&[depthwise(false)], true),
+            (&[depthwise(true)], false),
+            (&[depthwise(true)], true),
+            // Output channels differ from input channels, so a mixed-up channel index shows.
+            (&[full(4, false)], true),
+            // Two folds in one graph: a full convolution to 6 channels, then a grouped one (3 groups).
+            (
+                &[
+                    full(6, true),
+                    Layer {
+                        group: 3,
+                        m: 3,
+                        with_bias: false,
+                    },
+                ],
+                false,
+            ),
+        ];
+        for (layers, raw) in cases {
+            let original = conv_bn(layers, raw);
             let mut folded = original.clone();
-            let graph = folded.graph.as_mut().expect("graph");
-            assert_eq!(fold_conv_batchnorm(graph, &[]), 1);
-            assert_eq!(graph.node.len(), 1, "only the Conv is left");
-            assert_eq!(graph.node[0].output, vec!["y".to_string()]);
-            let names: Vec<&str> = graph.initializer.iter().map(|t| t.name.as_str()).collect();
-            assert_eq!(
-                names,
-                vec!["y.folded_weight", "y.folded_bias"],
-                "old weights dropped"
+            assert_eq!(fold_conv_batchnorm(&mut folded, &[]), layers.len());
+            let graph = folded.graph.as_ref().expect("graph");
+            assert!(
+                graph.node.iter().all(|n| n.op_type == "Conv"),
+                "only Convs are left"
             );
+            assert_eq!(graph.node.len(), layers.len());
+            assert_eq!(
+                graph.node.last().map(|n| n.output.clone()),
+                Some(vec!["y".to_string()])
+            );
+            let names = initializer_names(&folded);
+            assert_eq!(
+                names.len(),
+                2 * layers.len(),
+                "old weights dropped: {names:?}"
+            );
+            assert!(names.iter().all(|n| n.contains(".folded_")));
             let x = values(C * H * H, 7);
-            let expected = by_the_specification(&original, &x);
-            // The ONNX specification's formulas in double precision against float arithmetic: a few ulps
-            // of values of order 1.
-            assert!(max_difference(&run(&folded, &x), &expected) < 1e-5);
-            assert!(max_difference(&run(&original, &x), &expected) < 1e-5);
+            let expected = by_the_specification(&original, layers, &x);
+            // The ONNX specification's formulas in double precision against float arithmetic: a few ulps of
+            // values of order 1.
+            let (after, before) = (run(&folded, &x), run(&original, &x));
+            assert!(max_difference(&after, &expected) < 1e-5, "folded");
+            assert!(max_difference(&before, &expected) < 1e-5, "unfolded");
         }
     }
 
     #[test]
+    fn new_names_do_not_meet_old_ones() {
+        let mut model = conv_bn(&[depthwise(true)], false);
+        let graph = model.graph.as_mut().expect("graph");
+        graph.value_info.push(value_info("y.folded_weight", &[3]));
+        assert_eq!(fold_conv_batchnorm(&mut model, &[]), 1);
+        let names = initializer_names(&model);
+        assert_eq!(names, vec!["y.folded_weight.2", "y.folded_bias"]);
+    }
+
+    #[test]
     fn patterns_that_do_not_match_exactly_are_left_alone() {
+        fn unchanged(model: &mut pb::ModelProto, read_by_name: &[&str]) {
+            let before = model.clone();
+            assert_eq!(fold_conv_batchnorm(model, read_by_name), 0);
+            assert_eq!(*model, before);
+        }
+        let base = || conv_bn(&[depthwise(true)], false);
         // The Conv's output is also a graph output.
-        let mut model = depthwise_bn(true, false);
-        let graph = model.graph.as_mut().expect("graph");
-        graph.output.push(value_info("c", &[1, 3, 5, 5]));
-        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
-        assert_eq!(graph.node.len(), 2);
+        let mut model = base();
+        if let Some(g) = model.graph.as_mut() {
+            g.output.push(value_info("c0", &[1, 3, 5, 5]));
+        }
+        unchanged(&mut model, &[]);
         // The Conv's output is read by name (as a manifest's output tensor would be).
-        let mut model = depthwise_bn(true, false);
-        let graph = model.graph.as_mut().expect("graph");
-        assert_eq!(fold_conv_batchnorm(graph, &["c"]), 0);
+        unchanged(&mut base(), &["c0"]);
         // Training mode normalises with the batch's own statistics.
-        let mut model = depthwise_bn(true, false);
-        let graph = model.graph.as_mut().expect("graph");
-        graph.node[1].attribute.push(int("training_mode", 1));
-        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
+        let mut model = base();
+        if let Some(g) = model.graph.as_mut() {
+            g.node[1].attribute.push(int("training_mode", 1));
+        }
+        unchanged(&mut model, &[]);
+        // An epsilon given twice, or not as a float.
+        let mut model = base();
+        if let Some(g) = model.graph.as_mut() {
+            g.node[1].attribute.push(float("epsilon", 0.5));
+        }
+        unchanged(&mut model, &[]);
+        let mut model = base();
+        if let Some(g) = model.graph.as_mut() {
+            g.node[1].attribute = vec![int("epsilon", 1)];
+        }
+        unchanged(&mut model, &[]);
         // Statistics that are not initializers (here, a graph input).
-        let mut model = depthwise_bn(true, false);
-        let graph = model.graph.as_mut().expect("graph");
-        graph.initializer.retain(|t| t.name != "mean");
-        graph.input.push(value_info("mean", &[3]));
-        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
+        let mut model = base();
+        if let Some(g) = model.graph.as_mut() {
+            g.initializer.retain(|t| t.name != "mean0");
+            g.input.push(value_info("mean0", &[3]));
+        }
+        unchanged(&mut model, &[]);
         // A weight whose stored length does not match its shape.
-        let mut model = depthwise_bn(false, true);
-        let graph = model.graph.as_mut().expect("graph");
-        graph.initializer[0].raw_data.truncate(8);
-        assert_eq!(fold_conv_batchnorm(graph, &[]), 0);
-        assert_eq!(graph.initializer.len(), 5, "nothing dropped");
+        let mut model = conv_bn(&[depthwise(false)], true);
+        if let Some(g) = model.graph.as_mut() {
+            g.initializer[0].raw_data.truncate(8);
+        }
+        unchanged(&mut model, &[]);
+        // A hostile shape: 2^36 output channels and no values. Nothing is allocated for it.
+        let mut model = conv_bn(&[depthwise(false)], false);
+        if let Some(g) = model.graph.as_mut() {
+            g.initializer[0].dims = vec![1 << 36, 0, 3, 3];
+            g.initializer[0].float_data.clear();
+        }
+        unchanged(&mut model, &[]);
+        // A normalisation without an output.
+        let mut model = base();
+        if let Some(g) = model.graph.as_mut() {
+            g.node[1].output.clear();
+        }
+        unchanged(&mut model, &[]);
+        // An opset before 9, whose BatchNormalization had training and per-element variants.
+        let mut model = base();
+        model.opset_import[0].version = 8;
+        unchanged(&mut model, &[]);
     }
 }

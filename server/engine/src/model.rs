@@ -531,9 +531,7 @@ fn tract_backend(
     };
     // tract's copy of the graph with each Conv's BatchNormalization folded into it (`fold.rs`).
     let mut folded = proto.clone();
-    if let Some(graph) = folded.graph.as_mut() {
-        crate::fold::fold_conv_batchnorm(graph, &[manifest.output.tensor.as_str()]);
-    }
+    crate::fold::fold_conv_batchnorm(&mut folded, &[manifest.output.tensor.as_str()]);
     let inference = || -> Result<InferenceModel, ModelError> {
         let inference = onnx.model_for_proto_model(&folded).map_err(engine_error)?;
         if manifest.output.tensor.is_empty() {
