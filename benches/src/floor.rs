@@ -17,6 +17,9 @@ use tokio_stream::wrappers::ReceiverStream;
 use tokio_util::sync::CancellationToken;
 use tonic::{Request, Response, Status, Streaming};
 
+/// Why the floor refuses every call but a session.
+const ONLY_FRAMES: &str = "the transport floor only answers frames";
+
 /// Answers a session's frames at once, or after `pause`; every other call is refused.
 struct Floor {
     classes: usize,
@@ -96,27 +99,21 @@ impl FrameAnalysis for Floor {
         &self,
         _: Request<pb::ListModelsRequest>,
     ) -> Result<Response<pb::ListModelsReply>, Status> {
-        Err(Status::unimplemented(
-            "the transport floor only answers frames",
-        ))
+        Err(Status::unimplemented(ONLY_FRAMES))
     }
 
     async fn describe_model(
         &self,
         _: Request<pb::DescribeModelRequest>,
     ) -> Result<Response<pb::ModelDescription>, Status> {
-        Err(Status::unimplemented(
-            "the transport floor only answers frames",
-        ))
+        Err(Status::unimplemented(ONLY_FRAMES))
     }
 
     async fn read_statistics(
         &self,
         _: Request<pb::StatisticsRequest>,
     ) -> Result<Response<pb::ServerStatistics>, Status> {
-        Err(Status::unimplemented(
-            "the transport floor only answers frames",
-        ))
+        Err(Status::unimplemented(ONLY_FRAMES))
     }
 }
 

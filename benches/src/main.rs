@@ -874,6 +874,9 @@ async fn overhead(
             bail!("--connections {c}: expected tcp, unix or file");
         }
     }
+    if !(0.0..=1000.0).contains(&floor_pause_ms) {
+        bail!("--floor-pause-ms {floor_pause_ms}: expected 0 to 1000");
+    }
     let chosen = |list: &[String], name: &str| list.is_empty() || list.iter().any(|l| l == name);
     let (bench, bench_dir) = bench_package()?;
     let socket =
@@ -888,23 +891,16 @@ async fn overhead(
     // The transport's floor, on the same runtime, measured just before each row with the same frames.
     let floor_socket =
         std::env::temp_dir().join(format!("framewise-floor-{}.sock", std::process::id()));
-    if !(0.0..=1000.0).contains(&floor_pause_ms) {
-        bail!("--floor-pause-ms {floor_pause_ms}: expected 0 to 1000");
-    }
     let floor = floor::FloorServer::start(
         &floor_socket,
         bench.manifest.classes.len(),
         Duration::from_secs_f64(floor_pause_ms / 1000.0),
     )
     .await?;
-    let floor_urls = [
-        ("tcp loopback", format!("http://{}", floor.addr)),
-        ("unix socket", format!("unix:{}", floor_socket.display())),
-        (
-            "unix socket + frame file",
-            format!("unix:{}", floor_socket.display()),
-        ),
-    ];
+    let (floor_tcp, floor_unix) = (
+        format!("http://{}", floor.addr),
+        format!("unix:{}", floor_socket.display()),
+    );
     let mut rows = Vec::new();
     println!(
         "| engine | frames | connection | round trip p50 ms | inference p50 ms | overhead p50 ms | overhead p99 ms | of which preprocessing p50 | of which hand-over to a worker p50 | of which the rest in the server p50 | of which transport (outside the server) p50 | transport floor p50 ms (round trip less its pause) | overhead above the floor p50 ms |"
@@ -932,20 +928,22 @@ async fn overhead(
         };
         let server = framewise_server::start(config, None).await?;
         let unix = format!("unix:{}", socket.display());
+        // (short name, name, framewise's address, the floor's address, frames by file)
         let all = [
             (
                 "tcp",
                 "tcp loopback",
                 format!("http://{}", server.addr),
+                &floor_tcp,
                 false,
             ),
-            ("unix", "unix socket", unix.clone(), false),
-            ("file", "unix socket + frame file", unix, true),
+            ("unix", "unix socket", unix.clone(), &floor_unix, false),
+            ("file", "unix socket + frame file", unix, &floor_unix, true),
         ];
         let connections: Vec<_> = all
             .into_iter()
             .filter(|(short, ..)| chosen(connections, short))
-            .map(|(_, name, url, by_file)| (name, url, by_file))
+            .map(|(_, name, url, floor_url, by_file)| (name, url, floor_url, by_file))
             .collect();
         for (short, format, w, h) in [
             ("rgb224", PixelFormat::Rgb8, 224u32, 224u32),
@@ -958,7 +956,7 @@ async fn overhead(
                 .into_iter()
                 .map(Into::into)
                 .collect();
-            for (connection, url, by_file) in &connections {
+            for (connection, url, floor_url, by_file) in &connections {
                 let mut file = match by_file {
                     true => Some(framewise_cli::client::FrameFile::create(
                         &frames_dir,
@@ -967,11 +965,6 @@ async fn overhead(
                     )?),
                     false => None,
                 };
-                let floor_url = floor_urls
-                    .iter()
-                    .find(|(name, _)| name == connection)
-                    .map(|(_, url)| url)
-                    .context("no floor for this connection")?;
                 // The floor's round trip less its pause (zero unless --floor-pause-ms).
                 let floor_trips: Vec<f64> =
                     one_session(floor_url, format, w, h, &data, frames, file.as_mut())

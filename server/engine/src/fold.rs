@@ -143,13 +143,7 @@ pub fn fold_conv_batchnorm(model: &mut pb::ModelProto, read_by_name: &[&str]) ->
         .chain(graph.input.iter().map(|i| i.name.as_str()))
         .chain(graph.output.iter().map(|o| o.name.as_str()))
         .collect();
-    let keep: Vec<bool> = graph
-        .initializer
-        .iter()
-        .map(|t| read.contains(t.name.as_str()))
-        .collect();
-    let mut keep = keep.into_iter();
-    graph.initializer.retain(|_| keep.next().unwrap_or(true));
+    graph.initializer.retain(|t| read.contains(t.name.as_str()));
     count
 }
 
@@ -303,30 +297,33 @@ mod tests {
         }
     }
 
+    fn attribute(name: &str, kind: pb::attribute_proto::AttributeType) -> pb::AttributeProto {
+        pb::AttributeProto {
+            name: name.into(),
+            r#type: kind as i32,
+            ..Default::default()
+        }
+    }
+
     fn ints(name: &str, values: &[i64]) -> pb::AttributeProto {
+        let ints = values.to_vec();
         pb::AttributeProto {
-            name: name.into(),
-            r#type: pb::attribute_proto::AttributeType::Ints as i32,
-            ints: values.to_vec(),
-            ..Default::default()
+            ints,
+            ..attribute(name, pb::attribute_proto::AttributeType::Ints)
         }
     }
 
-    fn int(name: &str, value: i64) -> pb::AttributeProto {
+    fn int(name: &str, i: i64) -> pb::AttributeProto {
         pb::AttributeProto {
-            name: name.into(),
-            r#type: pb::attribute_proto::AttributeType::Int as i32,
-            i: value,
-            ..Default::default()
+            i,
+            ..attribute(name, pb::attribute_proto::AttributeType::Int)
         }
     }
 
-    fn float(name: &str, value: f32) -> pb::AttributeProto {
+    fn float(name: &str, f: f32) -> pb::AttributeProto {
         pb::AttributeProto {
-            name: name.into(),
-            r#type: pb::attribute_proto::AttributeType::Float as i32,
-            f: value,
-            ..Default::default()
+            f,
+            ..attribute(name, pb::attribute_proto::AttributeType::Float)
         }
     }
 
