@@ -80,7 +80,8 @@ class Model:
         self.scale = float(self.inp["scale"])
         self.mean = np.array(self.inp["mean"], dtype=np.float32)
         self.std = np.array(self.inp["std"], dtype=np.float32)
-        self.interpolation = {"bilinear": cv2.INTER_LINEAR, "area": cv2.INTER_AREA}[self.inp["interpolation"]]
+        # The peer resizes with OpenCV only (framewise's opencv-* recipes; others approximated by INTER_LINEAR).
+        self.interpolation = {"opencv-area": cv2.INTER_AREA}.get(self.inp["interpolation"], cv2.INTER_LINEAR)
         # Warm up once so the first frame does not pay for it.
         self.infer(np.zeros((self.size[1], self.size[0], 3), np.uint8))
 

@@ -2,8 +2,8 @@
 //!
 //! - `inference`: bare inference per frame on the demo model and the MobileNetV2-shaped network, for tract,
 //!   the ONNX Runtime engine and Python onnxruntime (the reference), with 1 and 2 threads.
-//! - `preprocess`: one frame to the 224x224 input tensor, per pixel format and frame size, on framewise's
-//!   SIMD path and on a plain path built from the `image` crate and scalar colour conversion.
+//! - `preprocess` (`preprocess.rs`): one frame to the 224x224 input tensor, per pixel format, frame size and
+//!   resize recipe.
 //! - `transport`: the floor under moving a frame, bare TCP loopback and Unix-socket round trips and a copy.
 //! - `overhead`: end-to-end time through a loopback server (one session, every frame) minus the inference
 //!   time the server reports, for 224x224 RGB and 1920x1080 NV12 frames; before each row the same frames go
@@ -25,18 +25,14 @@ use std::time::{Duration, Instant};
 use anyhow::{Context, Result, bail};
 use clap::{Parser, Subcommand};
 use framewise_engine::frame::encode_from_rgb;
-use framewise_engine::manifest::InputSpec;
-use framewise_engine::pipeline::{self, FrameSpec, Scratch};
-use framewise_engine::preprocess::Preprocessor;
-use framewise_engine::{
-    CAUTION, EngineKind, EngineOptions, FrameRef, Model, ModelPackage, PixelFormat,
-};
+use framewise_engine::{CAUTION, EngineKind, EngineOptions, Model, ModelPackage, PixelFormat};
 use framewise_models_demo::phantom::{Drum, random_view};
 use framewise_models_demo::rng::SplitMix64;
 use framewise_proto::v1 as pb;
 use serde_json::json;
 
 mod floor;
+mod preprocess;
 
 #[derive(Parser)]
 #[command(about = "framewise benchmarks (numbers for BENCHMARKS.md)")]
@@ -57,7 +53,7 @@ enum Bench {
         #[arg(long, default_value_t = 300)]
         frames: usize,
     },
-    /// One frame to the input tensor per pixel format and size: SIMD path against a plain path.
+    /// One frame to the input tensor per pixel format, size and resize recipe.
     Preprocess {
         /// Frames timed per configuration.
         #[arg(long, default_value_t = 60)]
@@ -156,7 +152,7 @@ fn run() -> Result<()> {
             frames,
             sizes,
             formats,
-        } => preprocess(frames, &sizes, &formats)?,
+        } => preprocess::run(frames, &sizes, &formats)?,
         Bench::Throughput {
             engine: kind,
             workers,
@@ -216,7 +212,7 @@ fn machine() -> serde_json::Value {
 }
 
 /// Median and 99th percentile (nearest rank) of millisecond samples.
-fn summary(mut ms: Vec<f64>) -> (f64, f64) {
+pub(crate) fn summary(mut ms: Vec<f64>) -> (f64, f64) {
     ms.sort_by(f64::total_cmp);
     if ms.is_empty() {
         return (0.0, 0.0);
@@ -226,15 +222,12 @@ fn summary(mut ms: Vec<f64>) -> (f64, f64) {
 }
 
 fn demo_package() -> Result<ModelPackage> {
-    Ok(ModelPackage::from_parts(
-        framewise_models_demo::package::DEMO_MANIFEST,
-        framewise_models_demo::package::DEMO_ONNX,
-    )?)
+    Ok(framewise_models_demo::package::demo_package()?)
 }
 
 /// The MobileNetV2-shaped network (made by models-demo/scripts/make_bench_model.py with the reference
 /// fixtures) and its directory.
-fn bench_package() -> Result<(ModelPackage, PathBuf)> {
+pub(crate) fn bench_package() -> Result<(ModelPackage, PathBuf)> {
     let dir = framewise_tests::fixtures().join("bench-model");
     Ok((ModelPackage::read(&dir)?, dir))
 }
@@ -244,6 +237,7 @@ fn engine(kind: EngineKind, threads: usize) -> EngineOptions {
         kind,
         onnxruntime_library: (kind != EngineKind::Tract).then(framewise_tests::onnxruntime_library),
         threads,
+        ..EngineOptions::default()
     }
 }
 
@@ -586,7 +580,12 @@ fn open_loop(
 }
 
 /// Synthetic frames (invented phantom views) in a format and size.
-fn frames_of(format: PixelFormat, width: u32, height: u32, count: usize) -> Result<Vec<Vec<u8>>> {
+pub(crate) fn frames_of(
+    format: PixelFormat,
+    width: u32,
+    height: u32,
+    count: usize,
+) -> Result<Vec<Vec<u8>>> {
     let mut rng = SplitMix64::new(11);
     let drum = Drum::random(8, &mut rng);
     (0..count)
@@ -595,203 +594,6 @@ fn frames_of(format: PixelFormat, width: u32, height: u32, count: usize) -> Resu
             encode_from_rgb(&rgb, width, height, format).map_err(|e| anyhow::anyhow!("{e}"))
         })
         .collect()
-}
-
-/// BT.601 limited range to RGB, one pixel, in floating point (the plain path's converter; ITU-R BT.601
-/// coefficients).
-fn yuv_pixel(y: u8, u: u8, v: u8) -> [u8; 3] {
-    let (y, u, v) = (
-        1.164 * (y as f32 - 16.0),
-        u as f32 - 128.0,
-        v as f32 - 128.0,
-    );
-    let c = |x: f32| x.round().clamp(0.0, 255.0) as u8;
-    [
-        c(y + 1.596 * v),
-        c(y - 0.392 * u - 0.813 * v),
-        c(y + 2.017 * u),
-    ]
-}
-
-/// The plain path: scalar colour conversion into an `image` buffer, `image`'s Triangle resize, then the
-/// same normalisation loop. What one writes with the `image` crate alone.
-fn plain_prepare(
-    format: PixelFormat,
-    data: &[u8],
-    w: u32,
-    h: u32,
-    spec: &InputSpec,
-    tensor: &mut Vec<f32>,
-) -> Result<()> {
-    let (wu, hu) = (w as usize, h as usize);
-    let rgb: image::RgbImage = match format {
-        PixelFormat::Rgb8 => image::RgbImage::from_raw(w, h, data.to_vec()).context("size")?,
-        PixelFormat::Bgr8 | PixelFormat::Bgra8 | PixelFormat::Rgba8 => {
-            let n = if format == PixelFormat::Bgr8 { 3 } else { 4 };
-            let bgr = format != PixelFormat::Rgba8;
-            image::RgbImage::from_fn(w, h, |x, y| {
-                let i = (y as usize * wu + x as usize) * n;
-                let p = &data[i..i + 3];
-                image::Rgb(if bgr {
-                    [p[2], p[1], p[0]]
-                } else {
-                    [p[0], p[1], p[2]]
-                })
-            })
-        }
-        PixelFormat::Gray8 => image::RgbImage::from_fn(w, h, |x, y| {
-            let g = data[y as usize * wu + x as usize];
-            image::Rgb([g, g, g])
-        }),
-        PixelFormat::Nv12 | PixelFormat::I420 => {
-            let luma = &data[..wu * hu];
-            let chroma = &data[wu * hu..];
-            let q = (wu / 2) * (hu / 2);
-            image::RgbImage::from_fn(w, h, |x, y| {
-                let (cx, cy) = (x as usize / 2, y as usize / 2);
-                let (u, v) = if format == PixelFormat::Nv12 {
-                    let i = cy * wu + cx * 2;
-                    (chroma[i], chroma[i + 1])
-                } else {
-                    let i = cy * (wu / 2) + cx;
-                    (chroma[i], chroma[q + i])
-                };
-                image::Rgb(yuv_pixel(luma[y as usize * wu + x as usize], u, v))
-            })
-        }
-        PixelFormat::Yuyv => image::RgbImage::from_fn(w, h, |x, y| {
-            let i = y as usize * wu * 2 + (x as usize / 2) * 4;
-            let yy = data[i + if x % 2 == 0 { 0 } else { 2 }];
-            image::Rgb(yuv_pixel(yy, data[i + 1], data[i + 3]))
-        }),
-        other => bail!("the plain path does not handle {other}"),
-    };
-    let resized = image::imageops::resize(
-        &rgb,
-        spec.width,
-        spec.height,
-        image::imageops::FilterType::Triangle,
-    );
-    let plane = (spec.width * spec.height) as usize;
-    tensor.resize(3 * plane, 0.0);
-    for (i, p) in resized.pixels().enumerate() {
-        for c in 0..3 {
-            tensor[c * plane + i] =
-                (p.0[c] as f32 * spec.scale as f32 - spec.mean[c] as f32) / spec.std[c] as f32;
-        }
-    }
-    Ok(())
-}
-
-fn preprocess(frames: usize, sizes: &[String], formats: &[String]) -> Result<serde_json::Value> {
-    let (bench, _) = bench_package()?;
-    let model = Model::load(&bench, None)?;
-    let spec = &model.manifest().input;
-    let sizes: Vec<(u32, u32)> = sizes
-        .iter()
-        .map(|s| {
-            s.split_once('x')
-                .and_then(|(w, h)| Some((w.trim().parse().ok()?, h.trim().parse().ok()?)))
-                .with_context(|| format!("--sizes {s}: expected WIDTHxHEIGHT"))
-        })
-        .collect::<Result<_>>()?;
-    let formats: Vec<PixelFormat> = if formats.is_empty() {
-        PixelFormat::ALL
-            .into_iter()
-            .filter(|f| !f.is_encoded())
-            .collect()
-    } else {
-        formats
-            .iter()
-            .map(|f| PixelFormat::from_name(f).with_context(|| format!("--formats {f}: unknown")))
-            .collect::<Result<_>>()?
-    };
-    let mut rows = Vec::new();
-    println!(
-        "| format | frame | framewise (SIMD) median ms | p99 ms | of which decode / resize and normalise / quality, median ms | plain `image` path median ms | plain / SIMD |"
-    );
-    println!("|---|---|---|---|---|---|---|");
-    for &(w, h) in &sizes {
-        for &format in &formats {
-            let data = frames_of(format, w, h, 4)?;
-            let refs: Vec<FrameRef<'_>> = data
-                .iter()
-                .map(|d| FrameRef {
-                    format,
-                    width: w,
-                    height: h,
-                    stride: 0,
-                    data: d,
-                })
-                .collect();
-            let mut scratch = Scratch::default();
-            let frame_spec = FrameSpec::default();
-            let mut simd = Vec::with_capacity(frames);
-            for (i, frame) in refs.iter().cycle().take(frames + 5).enumerate() {
-                let t = Instant::now();
-                pipeline::prepare(&model, frame, &frame_spec, &mut scratch)?;
-                if i >= 5 {
-                    simd.push(t.elapsed().as_secs_f64() * 1000.0);
-                }
-            }
-            // The same work in its three parts, timed one by one.
-            let (mut decode, mut rgb, mut pre, mut tensor) = Default::default();
-            let mut parts: [Vec<f64>; 3] = Default::default();
-            // As the pipeline does: only the rows the resize reads are converted where the format allows.
-            let mut mask = Vec::new();
-            let sparse = framewise_engine::preprocess::rows_read(spec, w, h, &mut mask);
-            let read = sparse.then_some(mask.as_slice());
-            for (i, frame) in refs.iter().cycle().take(frames + 5).enumerate() {
-                let t0 = Instant::now();
-                let view = framewise_engine::frame::read_rgb_rows(
-                    frame,
-                    None,
-                    frame_spec.yuv,
-                    &frame_spec.limits,
-                    &mut decode,
-                    &mut rgb,
-                    read,
-                )?;
-                let t1 = Instant::now();
-                let prepared = Preprocessor::prepare_view(&mut pre, spec, view, &mut tensor);
-                let t2 = Instant::now();
-                let (pw, ph) = prepared.size;
-                std::hint::black_box(framewise_engine::quality::measure(
-                    prepared.luma,
-                    pw as usize,
-                    ph as usize,
-                ));
-                let t3 = Instant::now();
-                if i >= 5 {
-                    for (part, (a, b)) in parts.iter_mut().zip([(t0, t1), (t1, t2), (t2, t3)]) {
-                        part.push((b - a).as_secs_f64() * 1000.0);
-                    }
-                }
-            }
-            let [d_med, r_med, q_med] = parts.map(|p| summary(p).0);
-            let mut plain = Vec::with_capacity(frames);
-            for (i, d) in data.iter().cycle().take(frames + 2).enumerate() {
-                let t = Instant::now();
-                plain_prepare(format, d, w, h, spec, &mut tensor)?;
-                if i >= 2 {
-                    plain.push(t.elapsed().as_secs_f64() * 1000.0);
-                }
-            }
-            let (s_med, s_p99) = summary(simd);
-            let (p_med, p_p99) = summary(plain);
-            println!(
-                "| {format} | {w}x{h} | {s_med:.3} | {s_p99:.3} | {d_med:.3} / {r_med:.3} / {q_med:.3} | {p_med:.3} | {:.1} |",
-                p_med / s_med
-            );
-            rows.push(
-                json!({"format": format.to_string(), "width": w, "height": h,
-                "simd_median_ms": s_med, "simd_p99_ms": s_p99, "decode_median_ms": d_med,
-                "resize_normalise_median_ms": r_med, "quality_median_ms": q_med,
-                "plain_median_ms": p_med, "plain_p99_ms": p_p99}),
-            );
-        }
-    }
-    Ok(json!({"preprocess": rows}))
 }
 
 /// Round trips of `n` bytes over a connected pair of blocking sockets, with a pause between them as between

@@ -306,7 +306,9 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         caution: CAUTION.into(),
         servers: args.servers.clone(),
         model: sh.model.as_ref().map_or(serde_json::Value::Null, |m| {
-            serde_json::json!({"name": m.name, "version": m.version, "sha256": m.sha256, "engine": m.engine})
+            let self_test = m.self_test.as_ref().map(crate::output::SelfTestInfo::from).unwrap_or_default();
+            serde_json::json!({"name": m.name, "version": m.version, "sha256": m.sha256, "engine": m.engine,
+                "self_test": self_test})
         }),
         sessions: args.sessions,
         failed_sessions: sh.failures.clone(),

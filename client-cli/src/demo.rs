@@ -265,11 +265,12 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
     let report = score::Report::compute(&records.1, &records.0.classes)?;
     println!("{}", output::caution_line());
     println!(
-        "model: {} {} (sha256 {}), engine {}",
+        "model: {} {} (sha256 {}), engine {}, self-test {}",
         records.0.model.name,
         records.0.model.version,
         records.0.model.sha256,
-        records.0.model.engine
+        records.0.model.engine,
+        records.0.model.self_test.summary()
     );
     println!(
         "frames: {} sent, {} results, {} skipped, {} errors, in {:.1} s",

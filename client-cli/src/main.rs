@@ -302,8 +302,11 @@ fn score_command(args: ScoreArgs) -> Result<()> {
     let (header, records) = score::read_results(&args.results)?;
     let report = score::Report::compute(&records, &header.classes)?;
     println!(
-        "model: {} {} (sha256 {})",
-        header.model.name, header.model.version, header.model.sha256
+        "model: {} {} (sha256 {}), self-test {}",
+        header.model.name,
+        header.model.version,
+        header.model.sha256,
+        header.model.self_test.summary()
     );
     println!("{}", report.human());
     if let Some(path) = &args.json {

@@ -4,7 +4,7 @@ use anyhow::Result;
 use framewise_proto::v1 as pb;
 
 use crate::client;
-use crate::output::{caution_line, table};
+use crate::output::{SelfTestInfo, caution_line, table};
 
 /// Lists the models, as a table or as JSON lines.
 pub async fn run(url: &str, token: Option<&str>, json: bool) -> Result<()> {
@@ -22,10 +22,16 @@ pub async fn run(url: &str, token: Option<&str>, json: bool) -> Result<()> {
         for m in &reply.models {
             let id = m.identity.clone().unwrap_or_default();
             let input = m.input.clone().unwrap_or_default();
+            let self_test = id
+                .self_test
+                .as_ref()
+                .map(SelfTestInfo::from)
+                .unwrap_or_default();
             println!(
                 "{}",
                 serde_json::json!({
                     "kind": "model", "name": id.name, "version": id.version, "sha256": id.sha256, "engine": id.engine,
+                    "self_test": self_test,
                     "default": m.is_default, "classes": m.classes,
                     "input": {"tensor": input.tensor, "layout": input.layout, "width": input.width, "height": input.height,
                               "colour_order": input.colour_order, "resize": input.resize, "interpolation": input.interpolation,
@@ -42,15 +48,31 @@ pub async fn run(url: &str, token: Option<&str>, json: bool) -> Result<()> {
         .map(|m| {
             let id = m.identity.clone().unwrap_or_default();
             let input = m.input.clone().unwrap_or_default();
+            let self_test = id
+                .self_test
+                .as_ref()
+                .map(SelfTestInfo::from)
+                .unwrap_or_default();
             vec![
                 format!("{}{}", id.name, if m.is_default { " *" } else { "" }),
                 id.version,
                 id.engine,
                 format!(
-                    "{}x{} {} {}",
-                    input.width, input.height, input.colour_order, input.resize
+                    "{}x{} {} {} {}",
+                    input.width,
+                    input.height,
+                    input.colour_order,
+                    input.resize,
+                    input.interpolation
                 ),
                 m.classes.join(","),
+                match self_test.verdict.as_str() {
+                    "passed" | "failed" => format!(
+                        "{} (max dev {:.1e})",
+                        self_test.verdict, self_test.largest_deviation
+                    ),
+                    other => other.to_string(),
+                },
                 id.sha256,
             ]
         })
@@ -58,7 +80,15 @@ pub async fn run(url: &str, token: Option<&str>, json: bool) -> Result<()> {
     print!(
         "{}",
         table(
-            &["model", "version", "engine", "input", "classes", "sha256"],
+            &[
+                "model",
+                "version",
+                "engine",
+                "input",
+                "classes",
+                "self-test",
+                "sha256"
+            ],
             &rows
         )
     );

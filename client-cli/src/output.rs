@@ -32,7 +32,7 @@ pub struct Header {
 }
 
 /// A model's identity.
-#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
 pub struct ModelInfo {
     /// Name.
     pub name: String,
@@ -42,6 +42,64 @@ pub struct ModelInfo {
     pub sha256: String,
     /// Inference engine.
     pub engine: String,
+    /// What the package's self-test showed where the model ran.
+    #[serde(default)]
+    pub self_test: SelfTestInfo,
+}
+
+/// A package's self-test on the host that ran the model.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+pub struct SelfTestInfo {
+    /// "passed", "failed" or "none".
+    pub verdict: String,
+    /// Cases run.
+    pub cases: u32,
+    /// Cases beyond the tolerance.
+    pub failed: u32,
+    /// Largest |probability - expected|.
+    pub largest_deviation: f64,
+    /// The package's tolerance.
+    pub tolerance: f64,
+}
+
+impl SelfTestInfo {
+    /// One line for people: `passed (6 cases, largest deviation 1.5e-7, tolerance 1e-4)`.
+    pub fn summary(&self) -> String {
+        match self.verdict.as_str() {
+            "passed" | "failed" => format!(
+                "{} ({} of {} cases beyond the tolerance {:.0e}, largest deviation {:.1e})",
+                if self.verdict == "passed" {
+                    "passed"
+                } else {
+                    "FAILED"
+                },
+                self.failed,
+                self.cases,
+                self.tolerance,
+                self.largest_deviation
+            ),
+            "" => "not reported".into(),
+            _ => "none (no reference cases in the package)".into(),
+        }
+    }
+}
+
+impl From<&pb::SelfTestReport> for SelfTestInfo {
+    fn from(r: &pb::SelfTestReport) -> Self {
+        Self {
+            verdict: r.verdict.clone(),
+            cases: r.cases,
+            failed: r.failed,
+            largest_deviation: r.largest_deviation,
+            tolerance: r.tolerance,
+        }
+    }
+}
+
+impl From<&framewise_engine::SelfTestOutcome> for SelfTestInfo {
+    fn from(outcome: &framewise_engine::SelfTestOutcome) -> Self {
+        (&framewise_server::convert::self_test_report(outcome)).into()
+    }
 }
 
 impl From<&pb::ModelIdentity> for ModelInfo {
@@ -51,6 +109,23 @@ impl From<&pb::ModelIdentity> for ModelInfo {
             version: m.version.clone(),
             sha256: m.sha256.clone(),
             engine: m.engine.clone(),
+            self_test: m
+                .self_test
+                .as_ref()
+                .map(SelfTestInfo::from)
+                .unwrap_or_default(),
+        }
+    }
+}
+
+impl From<&framewise_engine::ModelIdentity> for ModelInfo {
+    fn from(id: &framewise_engine::ModelIdentity) -> Self {
+        Self {
+            name: id.name.clone(),
+            version: id.version.clone(),
+            sha256: id.sha256.clone(),
+            engine: id.engine.into(),
+            self_test: (&id.self_test).into(),
         }
     }
 }
@@ -183,8 +258,12 @@ pub fn write_csv_header<W: Write>(out: &mut W, header: &Header) -> std::io::Resu
     let m = &header.model;
     let mut text = format!("# {}\n", header.caution);
     text.push_str(&format!(
-        "# model {} {} sha256 {} engine {}\n",
-        m.name, m.version, m.sha256, m.engine
+        "# model {} {} sha256 {} engine {}; self-test {}\n",
+        m.name,
+        m.version,
+        m.sha256,
+        m.engine,
+        m.self_test.summary()
     ));
     text.push_str(&format!(
         "# source {}; engine at {}; settings {}\n",

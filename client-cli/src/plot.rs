@@ -28,9 +28,25 @@ fn svg_open(w: f64, h: f64) -> String {
     s
 }
 
-/// The model's identity as a plot footer shows it.
-fn model_text(name: &str, version: &str, sha256: &str, engine: &str) -> String {
-    format!("model {name} {version} sha256 {sha256} ({engine})")
+/// The model's identity as a plot footer shows it, with its self-test's verdict where it was reported.
+fn model_text(name: &str, version: &str, sha256: &str, engine: &str, self_test: &str) -> String {
+    let line = format!("model {name} {version} sha256 {sha256} ({engine})");
+    match self_test {
+        "" | "?" => line,
+        verdict => format!("{line}, self-test {verdict}"),
+    }
+}
+
+/// [`model_text`] of a results file's model.
+fn header_model_text(m: &crate::output::ModelInfo) -> String {
+    let verdict = match m.self_test.verdict.as_str() {
+        "passed" | "failed" => format!(
+            "{} (max dev {:.1e})",
+            m.self_test.verdict, m.self_test.largest_deviation
+        ),
+        other => other.to_string(),
+    };
+    model_text(&m.name, &m.version, &m.sha256, &m.engine, &verdict)
 }
 
 /// A string field of a JSON model identity, or "?".
@@ -292,17 +308,7 @@ pub fn timeline(header: &Header, records: &[FrameRecord], path: &Path) -> Result
         left,
         ly + 36.0
     );
-    svg_finish(
-        s,
-        (left, w, h),
-        &model_text(
-            &header.model.name,
-            &header.model.version,
-            &header.model.sha256,
-            &header.model.engine,
-        ),
-        path,
-    )
+    svg_finish(s, (left, w, h), &header_model_text(&header.model), path)
 }
 
 /// End-to-end latency by percentile (x: percentile on a log scale of 1/(1-q), as latency work shows tails),
@@ -383,6 +389,7 @@ pub fn percentiles(
             model_field(&report.model, "version"),
             model_field(&report.model, "sha256"),
             model_field(&report.model, "engine"),
+            model_field(&report.model["self_test"], "verdict"),
         ),
         path,
     )
@@ -508,17 +515,7 @@ pub fn sweep(header: &Header, points: &[crate::score::SweepPoint], path: &Path) 
             escape(&text)
         );
     }
-    svg_finish(
-        s,
-        (left, w, h),
-        &model_text(
-            &header.model.name,
-            &header.model.version,
-            &header.model.sha256,
-            &header.model.engine,
-        ),
-        path,
-    )
+    svg_finish(s, (left, w, h), &header_model_text(&header.model), path)
 }
 
 /// Reliability diagram: accuracy against mean top-class probability per bin, raw and smoothed, with the
@@ -608,17 +605,7 @@ pub fn reliability(header: &Header, report: &crate::score::Report, path: &Path) 
             metrics.ece
         );
     }
-    svg_finish(
-        s,
-        (left, w, h),
-        &model_text(
-            &header.model.name,
-            &header.model.version,
-            &header.model.sha256,
-            &header.model.engine,
-        ),
-        path,
-    )
+    svg_finish(s, (left, w, h), &header_model_text(&header.model), path)
 }
 
 #[cfg(test)]
@@ -628,7 +615,7 @@ mod tests {
     #[test]
     fn a_long_model_line_keeps_the_start_of_its_hash() {
         let sha = "388c05cc641930537baf222c0998b3a7c4f379268dbafca25c90763b71e688c3";
-        let line = model_text("phantom-zones", "1.0.0", sha, "tract");
+        let line = model_text("phantom-zones", "1.0.0", sha, "tract", "");
         assert_eq!(fit_model_line(&line, 2000.0), line, "fits: unchanged");
         assert_eq!(
             fit_model_line(&line, 400.0),

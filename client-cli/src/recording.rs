@@ -188,6 +188,11 @@ impl Recording {
         })
     }
 
+    /// The YUV code range the recording states (a Y4M header's `XCOLORRANGE`), if any.
+    pub fn yuv_range(&self) -> Option<framewise_engine::YuvRange> {
+        self.y4m.as_ref().and_then(|info| info.range)
+    }
+
     /// Reads one frame's bytes.
     pub fn read(&self, entry: &FrameEntry) -> Result<FrameData> {
         match &entry.source {

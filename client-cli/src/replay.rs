@@ -30,6 +30,11 @@ pub trait FrameSource: Send + Sync {
     fn read(&self, i: usize) -> Result<FrameData>;
     /// A description for the header.
     fn describe(&self) -> String;
+    /// The YUV code range the source states for its frames (a Y4M header's `XCOLORRANGE`), if any; used
+    /// when `--yuv` is not given.
+    fn yuv_range(&self) -> Option<framewise_engine::YuvRange> {
+        None
+    }
 }
 
 impl FrameSource for crate::recording::Recording {
@@ -42,6 +47,9 @@ impl FrameSource for crate::recording::Recording {
     }
     fn read(&self, i: usize) -> Result<FrameData> {
         crate::recording::Recording::read(self, &self.frames[i])
+    }
+    fn yuv_range(&self) -> Option<framewise_engine::YuvRange> {
+        self.yuv_range()
     }
     fn describe(&self) -> String {
         self.path.display().to_string()
@@ -139,12 +147,11 @@ pub fn load_offline_model(
     let package = match path {
         Some(p) => ModelPackage::read(p)
             .with_context(|| format!("reading the model package {}", p.display()))?,
-        None => ModelPackage::from_parts(
-            framewise_models_demo::package::DEMO_MANIFEST,
-            framewise_models_demo::package::DEMO_ONNX,
-        )?,
+        None => framewise_models_demo::package::demo_package()?,
     };
-    Ok(Arc::new(Model::load_with(&package, None, engine)?))
+    let model = framewise_engine::load_model(&package, None, engine)
+        .with_context(|| format!("loading the model {}", package.manifest.name))?;
+    Ok(Arc::new(model))
 }
 
 /// Seqs already written to `path` (whole lines only); truncates a torn last line. Returns the header too.
@@ -232,7 +239,7 @@ pub async fn replay(
         kept: done.len(),
         ..Default::default()
     };
-    let opening = flags.opening()?;
+    let opening = flags.opening_for(source.yuv_range())?;
     let mut emit = |record: FrameRecord,
                     tally: &mut ReplayTally,
                     writer: &mut Box<dyn Write + Send>|
@@ -256,7 +263,17 @@ pub async fn replay(
     };
     let write_header = |header: &Header, writer: &mut Box<dyn Write + Send>| -> Result<()> {
         if let Some(old) = &old_header {
-            if old.model != header.model || old.source != header.source {
+            // The same model file on the same engine; its self-test figures belong to the host that ran it
+            // (a resume may run on another server).
+            let model = |m: &ModelInfo| {
+                (
+                    m.name.clone(),
+                    m.version.clone(),
+                    m.sha256.clone(),
+                    m.engine.clone(),
+                )
+            };
+            if model(&old.model) != model(&header.model) || old.source != header.source {
                 bail!(
                     "cannot resume: the output was written with model {} ({}) from {}, not {} ({}) from {}",
                     old.model.name,
@@ -288,12 +305,7 @@ pub async fn replay(
                 kind: "header".into(),
                 caution: CAUTION.into(),
                 framewise: env!("CARGO_PKG_VERSION").into(),
-                model: ModelInfo {
-                    name: id.name.clone(),
-                    version: id.version.clone(),
-                    sha256: id.sha256.clone(),
-                    engine: id.engine.into(),
-                },
+                model: ModelInfo::from(id),
                 classes: model.classes().to_vec(),
                 model_caution: model.manifest().caution.clone(),
                 source: source.describe(),
@@ -508,9 +520,18 @@ pub fn settings_json(s: &pb::SessionOpening) -> serde_json::Value {
         "decision": s.decision.as_ref().map(|d| serde_json::json!({"enter": d.enter, "exit": d.exit, "dwell_ms": d.dwell_ms})),
         "quality": s.quality.as_ref().map(|q| serde_json::json!({"min_focus": q.min_focus, "max_clipped": q.max_clipped})),
         "region": s.region.as_ref().map(|r| serde_json::json!({"x": r.x, "y": r.y, "width": r.width, "height": r.height})),
-        "policy": s.policy,
+        "policy": match pb::FramePolicy::try_from(s.policy) {
+            Ok(pb::FramePolicy::LatestOnly) => "latest_only",
+            _ => "every_frame",
+        },
         "deadline_ms": s.deadline_ms,
-        "yuv_matrix": s.yuv_matrix,
-        "yuv_range": s.yuv_range,
+        "yuv_matrix": match pb::YuvMatrix::try_from(s.yuv_matrix) {
+            Ok(pb::YuvMatrix::Bt709) => "bt709",
+            _ => "bt601",
+        },
+        "yuv_range": match pb::YuvRange::try_from(s.yuv_range) {
+            Ok(pb::YuvRange::Full) => "full",
+            _ => "limited",
+        },
     })
 }

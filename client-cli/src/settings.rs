@@ -19,6 +19,10 @@ pub struct EngineFlags {
     /// Threads per inference.
     #[arg(long, default_value_t = 1)]
     pub inference_threads: usize,
+    /// Run a model that fails its package's self-test (marked as failing in the output) instead of refusing
+    /// it.
+    #[arg(long)]
+    pub serve_failed_self_test: bool,
 }
 
 impl EngineFlags {
@@ -28,6 +32,7 @@ impl EngineFlags {
             kind: self.engine,
             onnxruntime_library: self.onnxruntime_library.clone(),
             threads: self.inference_threads.max(1),
+            serve_failed_self_test: self.serve_failed_self_test,
         }
     }
 }
@@ -65,9 +70,10 @@ pub struct SessionFlags {
     /// Per-frame deadline in milliseconds (0: none).
     #[arg(long, default_value_t = 0)]
     pub deadline_ms: u32,
-    /// YUV reading: bt601-limited | bt601-full | bt709-limited | bt709-full.
-    #[arg(long, default_value = "bt601-limited")]
-    pub yuv: String,
+    /// YUV reading: bt601-limited | bt601-full | bt709-limited | bt709-full. Without it, BT.601 in the
+    /// range the recording states (a Y4M file's XCOLORRANGE), else limited.
+    #[arg(long)]
+    pub yuv: Option<String>,
     /// Label of the source, for the server's logs.
     #[arg(long, default_value = "")]
     pub source_label: String,
@@ -118,6 +124,15 @@ pub fn filter_settings(text: &str) -> Result<pb::FilterSettings> {
 impl SessionFlags {
     /// The session opening these flags describe.
     pub fn opening(&self) -> Result<pb::SessionOpening> {
+        self.opening_for(None)
+    }
+
+    /// The session opening these flags describe, for a source that states its YUV code range (`--yuv`
+    /// overrides it).
+    pub fn opening_for(
+        &self,
+        stated: Option<framewise_engine::YuvRange>,
+    ) -> Result<pb::SessionOpening> {
         let region = match &self.roi {
             Some(text) => {
                 let v: Vec<u32> = text
@@ -144,7 +159,12 @@ impl SessionFlags {
             "latest" => pb::FramePolicy::LatestOnly,
             other => bail!("--policy {other}: expected every or latest"),
         };
-        let (matrix, range) = match self.yuv.as_str() {
+        let yuv = match (&self.yuv, stated) {
+            (Some(yuv), _) => yuv.as_str(),
+            (None, Some(framewise_engine::YuvRange::Full)) => "bt601-full",
+            (None, _) => "bt601-limited",
+        };
+        let (matrix, range) = match yuv {
             "bt601-limited" => (pb::YuvMatrix::Bt601, pb::YuvRange::Limited),
             "bt601-full" => (pb::YuvMatrix::Bt601, pb::YuvRange::Full),
             "bt709-limited" => (pb::YuvMatrix::Bt709, pb::YuvRange::Limited),

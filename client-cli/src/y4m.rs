@@ -1,7 +1,8 @@
 //! Y4M (YUV4MPEG2) files: the header, frame offsets, and frames as the engine takes them.
 //!
-//! 4:2:0 frames go as I420, 4:2:2 as packed YUYV (planes interleaved), 4:4:4 converted to RGB with the
-//! session's default YUV reading (BT.601 limited range, the usual for Y4M).
+//! The planes go as they are, as I420, I422 or I444 frames (any width and height), so every layout is read
+//! with the session's YUV settings. The header's `XCOLORRANGE=FULL` or `=LIMITED` (written by the common
+//! encoders) says the code range; without it, limited range is the format's convention.
 
 use std::io::{BufRead, BufReader, Read, Seek, SeekFrom};
 use std::path::Path;
@@ -33,6 +34,8 @@ pub struct Y4mInfo {
     pub rate: (u32, u32),
     /// Chroma layout.
     pub chroma: Chroma,
+    /// The code range the header states (`XCOLORRANGE`), if it states one.
+    pub range: Option<framewise_engine::YuvRange>,
     /// Byte offsets of each whole frame's pixels.
     pub frames: Vec<u64>,
     /// Set when the file ends inside a frame.
@@ -77,6 +80,7 @@ impl Y4mInfo {
         }
         let (mut width, mut height, mut rate, mut chroma) =
             (0u32, 0u32, (30u32, 1u32), Chroma::C420);
+        let mut range = None;
         for field in fields {
             // The tag is the field's first character; split on its boundary, not on byte 1, so that a
             // header holding non-ASCII text is skipped like any unknown field instead of panicking.
@@ -111,6 +115,14 @@ impl Y4mInfo {
                         bail!("Y4M colour space C{value}: only 8-bit samples are supported");
                     }
                 }
+                "X" => {
+                    use framewise_engine::YuvRange;
+                    range = match value.strip_prefix("COLORRANGE=") {
+                        Some("FULL") => Some(YuvRange::Full),
+                        Some("LIMITED") => Some(YuvRange::Limited),
+                        _ => range,
+                    };
+                }
                 _ => {}
             }
         }
@@ -125,6 +137,7 @@ impl Y4mInfo {
             height,
             rate,
             chroma,
+            range,
             frames: Vec::new(),
             warning: None,
         };
@@ -169,50 +182,16 @@ impl Y4mInfo {
         let mut planes = vec![0u8; self.frame_bytes() as usize];
         file.read_exact(&mut planes)
             .context("reading a Y4M frame")?;
-        let (w, h) = (self.width as usize, self.height as usize);
-        Ok(match self.chroma {
-            Chroma::C420 => FrameData {
-                format: PixelFormat::I420,
-                width: self.width,
-                height: self.height,
-                data: planes,
-            },
-            Chroma::C422 => {
-                let cw = w.div_ceil(2);
-                let (y, rest) = planes.split_at(w * h);
-                let (u, v) = rest.split_at(cw * h);
-                let mut packed = vec![0u8; w.div_ceil(2) * 4 * h];
-                for row in 0..h {
-                    for cx in 0..cw {
-                        let o = (row * cw + cx) * 4;
-                        packed[o] = y[row * w + 2 * cx];
-                        packed[o + 1] = u[row * cw + cx];
-                        packed[o + 2] = y[row * w + (2 * cx + 1).min(w - 1)];
-                        packed[o + 3] = v[row * cw + cx];
-                    }
-                }
-                FrameData {
-                    format: PixelFormat::Yuyv,
-                    width: (cw * 2) as u32,
-                    height: self.height,
-                    data: packed,
-                }
-            }
-            Chroma::C444 => {
-                let rgb = framewise_engine::frame::yuv444_planar_to_rgb(
-                    &planes,
-                    self.width,
-                    self.height,
-                    Default::default(),
-                )
-                .map_err(|e| anyhow::anyhow!("{e}"))?;
-                FrameData {
-                    format: PixelFormat::Rgb8,
-                    width: self.width,
-                    height: self.height,
-                    data: rgb,
-                }
-            }
+        let format = match self.chroma {
+            Chroma::C420 => PixelFormat::I420,
+            Chroma::C422 => PixelFormat::I422,
+            Chroma::C444 => PixelFormat::I444,
+        };
+        Ok(FrameData {
+            format,
+            width: self.width,
+            height: self.height,
+            data: planes,
         })
     }
 }

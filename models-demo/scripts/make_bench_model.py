@@ -178,7 +178,7 @@ scale = {1.0 / 255.0!r}
 mean = [{", ".join(repr(v) for v in MEAN)}]
 std = [{", ".join(repr(v) for v in STD)}]
 resize = "stretch"
-interpolation = "bilinear"
+interpolation = "opencv-linear"
 letterbox_fill = 0
 
 [output]

@@ -364,7 +364,7 @@ scale = {SCALE!r}
 mean = [{", ".join(repr(v) for v in MEAN)}]
 std = [{", ".join(repr(v) for v in STD)}]
 resize = "centre_crop"
-interpolation = "area"
+interpolation = "opencv-area"
 letterbox_fill = 0
 
 [output]

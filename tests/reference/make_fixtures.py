@@ -2,8 +2,10 @@
 """Writes the reference fixtures framewise's Rust tests compare against.
 
 Every expected value here comes from a tool outside framewise: onnxruntime (the reference ONNX runtime),
-OpenCV (cv2.cvtColor, cv2.resize, cv2.Laplacian, cv2.imencode/imdecode), SciPy (signal.lfilter) and NumPy
-implementations of the ITU-R BT.601 / BT.709 equations. Inputs are seeded synthetic arrays (no patient data).
+OpenCV (cv2.cvtColor, cv2.resize, cv2.Laplacian, cv2.imencode/imdecode), Pillow (Image.resize, Image.open),
+SciPy (signal.lfilter), scikit-learn and NumPy implementations of the ITU-R BT.601 / BT.709 equations. The
+exact-preprocessing cases (resize recipes, YUV, files, whole-path parity, exported model shapes) are in
+exact.py. Inputs are seeded synthetic arrays (no patient data).
 
 Layout of --out:
   index.json                 what every case is, and where its files are
@@ -22,6 +24,8 @@ import tomllib
 
 import cv2
 import numpy as np
+
+import exact
 import onnx
 import onnxruntime as ort
 from scipy.signal import lfilter
@@ -77,123 +81,6 @@ def smooth_field(rng, h, w, channels, low=0, high=255):
 
 
 # ---------------------------------------------------------------------------------------------------------
-# Preprocessing as a manifest states it, built from OpenCV and NumPy (the reference path).
-
-def centre_crop_box(w, h, tw, th):
-    if w * th > h * tw:
-        cw = min(max((h * tw + th // 2) // th, 1), w)
-        return ((w - cw) // 2, 0, cw, h)
-    ch = min(max((w * th + tw // 2) // tw, 1), h)
-    return (0, (h - ch) // 2, w, ch)
-
-
-def reference_tensor(rgb, spec):
-    """rgb: HxWx3 uint8 (region already cut). Returns (resized uint8, float32 NCHW/NHWC tensor)."""
-    tw, th = spec["width"], spec["height"]
-    h, w = rgb.shape[:2]
-    interp = {"bilinear": cv2.INTER_LINEAR, "area": cv2.INTER_AREA}[spec["interpolation"]]
-    if spec["resize"] == "centre_crop":
-        x, y, cw, ch = centre_crop_box(w, h, tw, th)
-        rgb = rgb[y:y + ch, x:x + cw]
-    if spec["resize"] == "letterbox":
-        raise ValueError("letterbox fixtures are not generated")
-    resized = cv2.resize(rgb, (tw, th), interpolation=interp)
-    x = resized.astype(np.float64) * spec["scale"]
-    if spec["colour_order"] == "bgr":
-        x = x[..., ::-1]
-    x = (x - np.array(spec["mean"])) / np.array(spec["std"])
-    x = x.astype(np.float32)
-    if spec["layout"] == "nchw":
-        x = x.transpose(2, 0, 1)
-    return resized, np.ascontiguousarray(x[None])
-
-
-# ---------------------------------------------------------------------------------------------------------
-# YUV per ITU-R BT.601 / BT.709 (NumPy, float), and the byte layouts.
-
-KR_KB = {"bt601": (0.299, 0.114), "bt709": (0.2126, 0.0722)}  # ITU-R BT.601 and BT.709 luma coefficients
-
-
-def yuv444_to_rgb(y, u, v, matrix, full):
-    kr, kb = KR_KB[matrix]
-    kg = 1 - kr - kb
-    y = y.astype(np.float64)
-    u = u.astype(np.float64) - 128
-    v = v.astype(np.float64) - 128
-    if full:
-        yn, un, vn = y / 255, u / 255, v / 255
-    else:
-        yn, un, vn = (y - 16) / 219, u / 224, v / 224
-    r = yn + 2 * (1 - kr) * vn
-    b = yn + 2 * (1 - kb) * un
-    g = (yn - kr * r - kb * b) / kg
-    rgb = np.stack([r, g, b], axis=-1) * 255
-    return np.clip(np.rint(rgb), 0, 255).astype(np.uint8)
-
-
-def yuv_planes(rng, h, w):
-    y = smooth_field(rng, h, w, 1, 16, 235)[..., 0]
-    u = smooth_field(rng, h // 2, w // 2, 1, 40, 216)[..., 0]
-    v = smooth_field(rng, h // 2, w // 2, 1, 40, 216)[..., 0]
-    return y, u, v
-
-
-def pad_rows(rows, stride):
-    """rows: 2-D uint8 (rows x bytes). Pads each row to stride bytes with 0xAA."""
-    out = np.full((rows.shape[0], stride), 0xAA, dtype=np.uint8)
-    out[:, :rows.shape[1]] = rows
-    return out
-
-
-def layouts(rng, h, w, pad):
-    """Every raw format's bytes for one picture, with the reference RGB of each (OpenCV for 601-limited)."""
-    cases = []
-    rgb = smooth_field(rng, h, w, 3)
-    gray = cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY)
-    rgba = np.dstack([rgb, rng.integers(0, 256, (h, w, 1), dtype=np.uint8)])
-    for fmt, arr, ref in [
-        ("rgb8", rgb, rgb),
-        ("bgr8", rgb[..., ::-1], rgb),
-        ("rgba8", rgba, rgb),
-        ("bgra8", np.dstack([rgb[..., ::-1], rgba[..., 3:]]), rgb),
-        ("gray8", gray, np.dstack([gray] * 3)),
-    ]:
-        rows = arr.reshape(h, -1)
-        stride = rows.shape[1] + pad
-        cases.append((fmt, pad_rows(rows, stride).tobytes(), stride, {"opencv": ref}))
-    y, u, v = yuv_planes(rng, h, w)
-    i420 = np.concatenate([y.ravel(), u.ravel(), v.ravel()]).reshape(h * 3 // 2, w)
-    nv12 = np.concatenate([y.ravel(), np.stack([u, v], axis=-1).ravel()]).reshape(h * 3 // 2, w)
-    # 4:2:2 needs its own chroma (full height).
-    u2 = smooth_field(rng, h, w // 2, 1, 40, 216)[..., 0]
-    v2 = smooth_field(rng, h, w // 2, 1, 40, 216)[..., 0]
-    yuyv = np.stack([y[:, 0::2], u2, y[:, 1::2], v2], axis=-1).reshape(h, w * 2)
-    up420 = lambda c: np.repeat(np.repeat(c, 2, axis=0), 2, axis=1)
-    up422 = lambda c: np.repeat(c, 2, axis=1)
-    for fmt, packed, code, chroma in [
-        ("nv12", nv12, cv2.COLOR_YUV2RGB_NV12, (up420(u), up420(v))),
-        ("i420", i420, cv2.COLOR_YUV2RGB_I420, (up420(u), up420(v))),
-        ("yuyv", yuyv, cv2.COLOR_YUV2RGB_YUYV, (up422(u2), up422(v2))),
-    ]:
-        refs = {"opencv": cv2.cvtColor(packed.reshape(packed.shape[0], -1, 2) if fmt == "yuyv" else packed, code)}
-        for matrix in ("bt601", "bt709"):
-            for rng_name, full in (("limited", False), ("full", True)):
-                refs[f"{matrix}_{rng_name}"] = yuv444_to_rgb(y, chroma[0], chroma[1], matrix, full)
-        if fmt == "i420":
-            # Chroma planes use half the stride.
-            stride = w + pad
-            yb = pad_rows(y, stride).tobytes()
-            ub = pad_rows(u, stride // 2).tobytes()
-            vb = pad_rows(v, stride // 2).tobytes()
-            data = yb + ub + vb
-        else:
-            stride = packed.shape[1] + pad
-            data = pad_rows(packed, stride).tobytes()
-        cases.append((fmt, data, stride, refs))
-    return rgb, cases
-
-
-# ---------------------------------------------------------------------------------------------------------
 
 def inference_cases(w, name, package_dir, onnx_file, count, seed):
     manifest = read_manifest(package_dir)
@@ -206,77 +93,13 @@ def inference_cases(w, name, package_dir, onnx_file, count, seed):
         # Half plausible normalised images, half wide random values.
         if i % 2 == 0:
             img = smooth_field(rng, spec["height"], spec["width"], 3)
-            _, x = reference_tensor(img, {**spec, "resize": "stretch"})
+            x = exact.tensor_of(img.astype(np.float64), spec)
         else:
             x = rng.normal(0, 1.5, shape).astype(np.float32)
         logits = sess.run(None, {spec["tensor"]: x})[0]
         probs = softmax(logits)[0] if manifest["output"]["kind"] == "logits" else logits[0].astype(np.float64)
         cases.append({"input": w.bin(x, f"{name}_input"), "shape": list(x.shape), "probs": probs.tolist()})
     return {"model_dir": package_dir, "cases": cases}
-
-
-def whole_path_cases(w, package_dir, seed):
-    """Raw frames in every format through the reference path (OpenCV conversion and resize, onnxruntime)."""
-    manifest = read_manifest(package_dir)
-    spec = manifest["input"]
-    sess = session(os.path.join(package_dir, manifest["file"]))
-    rng = np.random.default_rng(seed)
-    out = []
-    # 640x480 whole frame (centre crop 480 -> 96, factor 5) and an odd region 481x480 at (81, 0) whose centre
-    # crop is 480x480 at x=81: both whole-number area factors.
-    h, w_ = 480, 640
-    _, cases = layouts(rng, h, w_, pad=24)
-    regions = [None, {"x": 81, "y": 0, "width": 481, "height": 480}]
-    for fmt, data, stride, refs in cases:
-        frame_file = w.bin(np.frombuffer(data, dtype=np.uint8), f"frame_{fmt}")
-        for region in regions:
-            ref = refs["opencv"]
-            if region:
-                ref = ref[region["y"]:region["y"] + region["height"], region["x"]:region["x"] + region["width"]]
-            resized, x = reference_tensor(ref, spec)
-            probs = softmax(sess.run(None, {spec["tensor"]: x})[0])[0]
-            case = {
-                "format": fmt, "width": w_, "height": h, "stride": stride, "frame": frame_file, "region": region,
-                "expected_rgb": w.bin(ref, "rgb"), "expected_resized": w.bin(resized, "resized"),
-                "probs": probs.tolist(),
-            }
-            if fmt in ("nv12", "i420", "yuyv"):
-                case["standard_rgb"] = {}
-                for key, std_ref in refs.items():
-                    if key == "opencv":
-                        continue
-                    if region:
-                        std_ref = std_ref[region["y"]:region["y"] + region["height"], region["x"]:region["x"] + region["width"]]
-                    case["standard_rgb"][key] = w.bin(std_ref, f"std_{key}")
-            out.append(case)
-    # Encoded files: PNG (lossless, decoded by OpenCV) and JPEG (quality 92, decoded by OpenCV).
-    rgb = smooth_field(rng, h, w_, 3)
-    for fmt, ext, params in (("png", ".png", []), ("jpeg", ".jpg", [cv2.IMWRITE_JPEG_QUALITY, 92])):
-        ok, enc = cv2.imencode(ext, rgb[..., ::-1], params)
-        assert ok
-        ref = cv2.cvtColor(cv2.imdecode(enc, cv2.IMREAD_COLOR), cv2.COLOR_BGR2RGB)
-        resized, x = reference_tensor(ref, spec)
-        probs = softmax(sess.run(None, {spec["tensor"]: x})[0])[0]
-        out.append({
-            "format": fmt, "width": 0, "height": 0, "stride": 0, "frame": w.bin(enc, f"file_{fmt}"),
-            "region": None, "expected_rgb": w.bin(ref, "rgb"), "expected_resized": w.bin(resized, "resized"),
-            "probs": probs.tolist(),
-        })
-    return out
-
-
-def resize_cases(w, seed):
-    """cv2.resize INTER_LINEAR and INTER_AREA on random RGB pictures, up and down, whole and fractional."""
-    rng = np.random.default_rng(seed)
-    out = []
-    for (sw, sh), (tw, th) in [((640, 480), (128, 96)), ((1920, 1080), (224, 224)), ((300, 200), (96, 96)),
-                               ((97, 61), (224, 224)), ((480, 480), (96, 96)), ((1280, 720), (320, 180))]:
-        src = smooth_field(rng, sh, sw, 3)
-        case = {"width": sw, "height": sh, "target": [tw, th], "source": w.bin(src, "resize_src")}
-        for name, code in (("bilinear", cv2.INTER_LINEAR), ("area", cv2.INTER_AREA)):
-            case[name] = w.bin(cv2.resize(src, (tw, th), interpolation=code), f"resize_{name}")
-        out.append(case)
-    return out
 
 
 def focus_cases(w, seed):
@@ -352,23 +175,26 @@ def y4m_cases(w, seed):
     """Y4M files written plane by plane with NumPy, for each chroma layout, and one truncated file."""
     rng = np.random.default_rng(seed)
     out = []
-    for chroma, (cw, ch) in (("420jpeg", (2, 2)), ("422", (2, 1)), ("444", (1, 1))):
-        width, height, frames = 64, 48, 3
-        planes, rgbs = [], []
-        data = bytearray(f"YUV4MPEG2 W{width} H{height} F25:1 Ip A1:1 C{chroma}\n".encode())
+    clips = [("420jpeg", 64, 48, ""), ("422", 64, 48, ""), ("444", 64, 48, ""),
+             ("420jpeg", 65, 47, " XCOLORRANGE=FULL"), ("422", 33, 9, " XCOLORRANGE=LIMITED")]
+    for chroma, width, height, extra in clips:
+        cw, ch = {"420jpeg": (2, 2), "422": (2, 1), "444": (1, 1)}[chroma]
+        frames = 3
+        planes = []
+        data = bytearray(f"YUV4MPEG2 W{width} H{height} F25:1 Ip A1:1 C{chroma}{extra}\n".encode())
         for _ in range(frames):
+            # Chroma planes of ceil(w / 2) x ceil(h / 2) samples for odd sizes, as ffmpeg writes them.
             y = rng.integers(16, 236, (height, width), dtype=np.uint8)
-            u = rng.integers(16, 241, (height // ch, width // cw), dtype=np.uint8)
-            v = rng.integers(16, 241, (height // ch, width // cw), dtype=np.uint8)
+            u = rng.integers(16, 241, (-(-height // ch), -(-width // cw)), dtype=np.uint8)
+            v = rng.integers(16, 241, (-(-height // ch), -(-width // cw)), dtype=np.uint8)
             data += b"FRAME\n" + y.tobytes() + u.tobytes() + v.tobytes()
             planes.append(w.bin(np.concatenate([y.ravel(), u.ravel(), v.ravel()]), f"y4m_{chroma}_planes"))
-            if chroma == "444":
-                rgbs.append(w.bin(yuv444_to_rgb(y, u, v, "bt601", False), "y4m_444_rgb"))
-        name = f"clip_{chroma}.y4m"
+        name = f"clip_{chroma}_{width}x{height}.y4m"
         with open(os.path.join(w.out, name), "wb") as f:
             f.write(data)
+        stated = {" XCOLORRANGE=FULL": "full", " XCOLORRANGE=LIMITED": "limited"}.get(extra)
         out.append({"file": name, "chroma": chroma, "width": width, "height": height, "frames": frames,
-                    "interval_ms": 40.0, "planes": planes, "rgb": rgbs})
+                    "interval_ms": 40.0, "planes": planes, "range": stated})
     truncated = bytes(data[: len(data) - 100])
     with open(os.path.join(w.out, "clip_truncated.y4m"), "wb") as f:
         f.write(truncated)
@@ -442,7 +268,9 @@ def main():
     args = ap.parse_args()
     os.makedirs(args.out, exist_ok=True)
     bench_dir = os.path.join(args.out, "bench-model")
-    if not os.path.exists(os.path.join(bench_dir, "manifest.toml")):
+    script = os.path.join(ROOT, "models-demo", "scripts", "make_bench_model.py")
+    manifest = os.path.join(bench_dir, "manifest.toml")
+    if not os.path.exists(manifest) or os.path.getmtime(manifest) < os.path.getmtime(script):
         subprocess.run([sys.executable, os.path.join(ROOT, "models-demo", "scripts", "make_bench_model.py"),
                         "--out", bench_dir, "--seed", "7"], check=True)
     w = Writer(args.out)
@@ -457,8 +285,7 @@ def main():
             "demo": inference_cases(w, "demo", args.demo_dir, demo["file"], 24, args.seed),
             "bench": inference_cases(w, "bench", bench_dir, bench["file"], 20, args.seed + 1),
         },
-        "whole_path": whole_path_cases(w, args.demo_dir, args.seed + 2),
-        "resize": resize_cases(w, args.seed + 3),
+        "exact": exact.cases(w, np.random.default_rng(args.seed + 2), args.out),
         "focus": focus,
         "luma": luma,
         "exponential": exponential_cases(args.seed + 5),

@@ -74,13 +74,9 @@ pub fn synth_sweep(dir: &Path, seconds: u32, width: u32, height: u32, seed: u64)
         .len() as u64
 }
 
-/// The embedded demo package.
+/// The embedded demo package, with its self-test cases.
 pub fn demo_package() -> ModelPackage {
-    ModelPackage::from_parts(
-        framewise_models_demo::package::DEMO_MANIFEST,
-        framewise_models_demo::package::DEMO_ONNX,
-    )
-    .expect("the embedded demo package parses")
+    framewise_models_demo::package::demo_package().expect("the embedded demo package parses")
 }
 
 /// The embedded demo model on tract, loaded once.
@@ -88,7 +84,9 @@ pub fn demo_model() -> Arc<Model> {
     static MODEL: OnceLock<Arc<Model>> = OnceLock::new();
     MODEL
         .get_or_init(|| {
-            Arc::new(Model::load(&demo_package(), None).expect("the embedded demo model loads"))
+            let model =
+                framewise_engine::load_model(&demo_package(), None, &EngineOptions::default());
+            Arc::new(model.expect("the embedded demo model loads and passes its self-test"))
         })
         .clone()
 }
@@ -123,6 +121,7 @@ pub fn onnxruntime_options(threads: usize) -> EngineOptions {
         kind: EngineKind::OnnxRuntime,
         onnxruntime_library: Some(onnxruntime_library()),
         threads,
+        ..EngineOptions::default()
     }
 }
 
@@ -131,7 +130,8 @@ pub fn demo_model_onnxruntime() -> Arc<Model> {
     static MODEL: OnceLock<Arc<Model>> = OnceLock::new();
     MODEL
         .get_or_init(|| {
-            let model = Model::load_with(&demo_package(), None, &onnxruntime_options(1));
+            let model =
+                framewise_engine::load_model(&demo_package(), None, &onnxruntime_options(1));
             Arc::new(model.expect("the embedded demo model loads on ONNX Runtime"))
         })
         .clone()
@@ -179,6 +179,9 @@ fn fixtures_fresh(dir: &Path) -> bool {
         "models-demo/package/manifest.toml",
         "models-demo/scripts/make_bench_model.py",
         "tests/reference/make_fixtures.py",
+        "tests/reference/exact.py",
+        "models-demo/scripts/make_self_test.py",
+        "models-demo/package/self-test/cases.toml",
     ]
     .iter()
     .all(|f| modified(&root.join(f)).is_some_and(|m| m <= made))
@@ -228,4 +231,86 @@ pub fn max_abs_diff(a: &[f32], b: &[f64]) -> f64 {
         .zip(b)
         .map(|(x, y)| (f64::from(*x) - y).abs())
         .fold(0.0, f64::max)
+}
+
+/// A value-by-value comparison of ours against a reference: how many values, how many differ, the largest
+/// absolute difference and the mean signed one (ours minus the reference). A bias inside a tolerance still
+/// shows in the mean.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Diff {
+    /// Values compared.
+    pub count: usize,
+    /// Values that differ at all.
+    pub differing: usize,
+    /// Largest |ours - reference|.
+    pub max_abs: f64,
+    /// Sum of (ours - reference).
+    pub sum: f64,
+}
+
+impl Diff {
+    /// Compares two equally long sequences.
+    pub fn of(
+        ours: impl IntoIterator<Item = f64>,
+        reference: impl IntoIterator<Item = f64>,
+    ) -> Self {
+        let (mut ours, mut reference) = (ours.into_iter(), reference.into_iter());
+        let mut diff = Self::default();
+        loop {
+            match (ours.next(), reference.next()) {
+                (Some(a), Some(b)) => diff.push(a - b),
+                (None, None) => return diff,
+                _ => panic!(
+                    "the two sequences differ in length (after {} values)",
+                    diff.count
+                ),
+            }
+        }
+    }
+
+    /// Compares two byte arrays.
+    pub fn bytes(ours: &[u8], reference: &[u8]) -> Self {
+        Self::of(
+            ours.iter().map(|&v| f64::from(v)),
+            reference.iter().map(|&v| f64::from(v)),
+        )
+    }
+
+    /// Adds one difference.
+    pub fn push(&mut self, d: f64) {
+        self.count += 1;
+        self.differing += usize::from(d != 0.0);
+        self.max_abs = self.max_abs.max(d.abs());
+        self.sum += d;
+    }
+
+    /// Adds another comparison's values.
+    pub fn add(&mut self, other: &Diff) {
+        self.count += other.count;
+        self.differing += other.differing;
+        self.max_abs = self.max_abs.max(other.max_abs);
+        self.sum += other.sum;
+    }
+
+    /// The mean signed difference.
+    pub fn mean(&self) -> f64 {
+        if self.count == 0 {
+            0.0
+        } else {
+            self.sum / self.count as f64
+        }
+    }
+}
+
+impl std::fmt::Display for Diff {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "{} of {} values differ, max {:.3e}, mean signed {:+.3e}",
+            self.differing,
+            self.count,
+            self.max_abs,
+            self.mean()
+        )
+    }
 }

@@ -22,7 +22,7 @@ fn flags() -> SessionFlags {
         roi: None,
         policy: "every".into(),
         deadline_ms: 0,
-        yuv: "bt601-limited".into(),
+        yuv: None,
         source_label: "test".into(),
     }
 }
@@ -173,6 +173,15 @@ async fn unreadable_frames_are_reported_and_the_rest_goes_on() {
             .as_str()
             .expect("caution")
             .contains("Decision support only")
+    );
+    // The file's header says what the model's self-test showed where it ran.
+    let self_test = &lines[0]["model"]["self_test"];
+    assert_eq!(self_test["verdict"], "passed", "{self_test}");
+    assert!(
+        self_test["largest_deviation"]
+            .as_f64()
+            .is_some_and(|d| d <= 1e-4),
+        "{self_test}"
     );
     let bad = lines
         .iter()

@@ -791,7 +791,7 @@ fn random_yuv(rng: &mut Rng) -> YuvSpec {
 // Target 1: raw frames in every pixel format, through validation, conversion and (sometimes) the pipeline.
 // ---------------------------------------------------------------------------------------------------------
 
-const RAW_FORMATS: [PixelFormat; 8] = [
+const RAW_FORMATS: [PixelFormat; 11] = [
     PixelFormat::Rgb8,
     PixelFormat::Bgr8,
     PixelFormat::Rgba8,
@@ -800,6 +800,9 @@ const RAW_FORMATS: [PixelFormat; 8] = [
     PixelFormat::Nv12,
     PixelFormat::I420,
     PixelFormat::Yuyv,
+    PixelFormat::Uyvy,
+    PixelFormat::I422,
+    PixelFormat::I444,
 ];
 
 const SMALL_LIMITS: FrameLimits = FrameLimits {
@@ -896,26 +899,38 @@ fn row_bytes(format: PixelFormat, width: u64) -> u64 {
     match format {
         PixelFormat::Rgb8 | PixelFormat::Bgr8 => 3 * width,
         PixelFormat::Rgba8 | PixelFormat::Bgra8 => 4 * width,
-        PixelFormat::Yuyv => 2 * width,
+        PixelFormat::Yuyv | PixelFormat::Uyvy => 2 * width,
         _ => width,
     }
 }
 
+/// The chroma planes of a planar layout: (columns, rows) per plane for a `w` x `h` frame, and the divisor of
+/// the stride (the wire contract: `ceil(stride / 2)` for 4:2:x, the stride for 4:4:4).
+fn chroma_planes(format: PixelFormat, w: u64, h: u64) -> Option<((u64, u64), u64)> {
+    match format {
+        PixelFormat::I420 => Some(((w.div_ceil(2), h.div_ceil(2)), 2)),
+        PixelFormat::I422 => Some(((w.div_ceil(2), h), 2)),
+        PixelFormat::I444 => Some(((w, h), 1)),
+        _ => None,
+    }
+}
+
 /// The sender's lengths from the wire contract (framewise.proto): every plane's rows padded to the stride
-/// (I420's chroma planes to half of it), and the same with the last row left unpadded.
+/// (planar chroma planes to ceil(stride / 2) for 4:2:x), and the same with the last row left unpadded.
 fn sender_lengths(format: PixelFormat, width: u32, height: u32, stride: u32) -> (u64, u64) {
     let row = row_bytes(format, u64::from(width));
     let s = if stride == 0 { row } else { u64::from(stride) };
     let h = u64::from(height);
+    if let Some(((cw, ch), div)) = chroma_planes(format, u64::from(width), h) {
+        let c = s.div_ceil(div);
+        let full = s * h + 2 * c * ch;
+        return (full, full.saturating_sub(c - cw.min(c)));
+    }
     match format {
         PixelFormat::Nv12 => (
             s * h + s * (h / 2),
             (s * h + s * (h / 2)).saturating_sub(s - row.min(s)),
         ),
-        PixelFormat::I420 => {
-            let full = s * h + 2 * (s / 2) * (h / 2);
-            (full, full.saturating_sub(s / 2 - (row / 2).min(s / 2)))
-        }
         _ => (s * h, (s * h).saturating_sub(s - row.min(s))),
     }
 }
@@ -934,16 +949,20 @@ fn pad_to_stride(
     }
     let s = stride as usize;
     let h = height as usize;
-    let planes: Vec<(usize, usize, usize)> = match format {
-        // (rows, row bytes, stride)
-        PixelFormat::Nv12 => vec![(h, row, s), (h / 2, row, s)],
-        PixelFormat::I420 => vec![
-            (h, row, s),
-            (h / 2, row / 2, s / 2),
-            (h / 2, row / 2, s / 2),
-        ],
-        _ => vec![(h, row, s)],
-    };
+    let planes: Vec<(usize, usize, usize)> =
+        match chroma_planes(format, width.into(), height.into()) {
+            // (rows, row bytes, stride)
+            Some(((cw, ch), div)) => {
+                let c = s.div_ceil(div as usize);
+                vec![
+                    (h, row, s),
+                    (ch as usize, cw as usize, c),
+                    (ch as usize, cw as usize, c),
+                ]
+            }
+            None if format == PixelFormat::Nv12 => vec![(h, row, s), (h / 2, row, s)],
+            None => vec![(h, row, s)],
+        };
     let mut out = Vec::new();
     let mut at = 0;
     for (rows, bytes, stride) in planes {
@@ -972,14 +991,11 @@ fn fresh_frame(rng: &mut Rng) -> RawFrame {
     } else {
         rng.below(10) as u32
     };
-    let mut stride = if pad == 0 && rng.chance(0.5) {
+    let stride = if pad == 0 && rng.chance(0.5) {
         0
     } else {
         row + pad
     };
-    if format == PixelFormat::I420 && stride % 2 == 1 {
-        stride += 1;
-    }
     let (full, least) = sender_lengths(format, w, h, stride);
     let len = if rng.chance(0.7) { full } else { least };
     let data = (0..len).map(|_| rng.next_u64() as u8).collect();
@@ -1063,9 +1079,9 @@ fn mutate_frame(rng: &mut Rng, corpus: &[(String, RawFrame)]) -> RawFrame {
 fn model_variants() -> Vec<Arc<Model>> {
     let mut models = vec![demo_model()];
     for (resize, interpolation) in [
-        ("letterbox", "bilinear"),
-        ("stretch", "area"),
-        ("letterbox", "area"),
+        ("letterbox", "opencv-linear"),
+        ("stretch", "pillow-bicubic"),
+        ("letterbox", "float-bilinear"),
     ] {
         let manifest = DEMO_MANIFEST
             .replace(
@@ -1073,7 +1089,7 @@ fn model_variants() -> Vec<Arc<Model>> {
                 &format!("resize = \"{resize}\""),
             )
             .replace(
-                "interpolation = \"area\"",
+                "interpolation = \"opencv-area\"",
                 &format!("interpolation = \"{interpolation}\""),
             );
         let package = ModelPackage::from_parts(&manifest, DEMO_ONNX).expect("variant parses");
@@ -1998,7 +2014,7 @@ const TOML_KEYS: [&str; 22] = [
     "color_order",
 ];
 
-const TOML_VALUES: [&str; 44] = [
+const TOML_VALUES: [&str; 46] = [
     "0",
     "-1",
     "1",
@@ -2033,6 +2049,8 @@ const TOML_VALUES: [&str; 44] = [
     "\"letterbox\"",
     "\"stretch\"",
     "\"bilinear\"",
+    "\"opencv-linear\"",
+    "\"pillow-bicubic\"",
     "\"probabilities\"",
     "[]",
     "[0.5]",
@@ -2891,12 +2909,13 @@ fn mutate_y4m(rng: &mut Rng, corpus: &[(String, Vec<u8>)]) -> Vec<u8> {
     d
 }
 
-/// Bytes of one Y4M frame's planes.
+/// Bytes of one Y4M frame's planes (the YUV4MPEG2 layout: chroma planes of ceil(w / 2) columns for 4:2:x
+/// and ceil(h / 2) rows for 4:2:0).
 fn y4m_frame_len(format: PixelFormat, width: u32, height: u32) -> usize {
     let (w, h) = (width as usize, height as usize);
     match format {
         PixelFormat::I420 => w * h + 2 * w.div_ceil(2) * h.div_ceil(2),
-        PixelFormat::Yuyv => 2 * w * h,
+        PixelFormat::I422 => w * h + 2 * w.div_ceil(2) * h,
         _ => 3 * w * h,
     }
 }
@@ -3298,8 +3317,7 @@ fn bit_flipped_model_files_load_or_are_refused_cleanly() {
 
 /// A package folder holding the demo manifest and `onnx`.
 fn write_package(dir: &Path, onnx: &[u8]) -> PathBuf {
-    std::fs::create_dir_all(dir).expect("package folder");
-    std::fs::write(dir.join("manifest.toml"), DEMO_MANIFEST).expect("manifest");
+    framewise_models_demo::package::write_demo_package(dir).expect("package folder");
     std::fs::write(dir.join("phantom-zones.onnx"), onnx).expect("onnx");
     dir.to_path_buf()
 }
@@ -4160,13 +4178,16 @@ fn write_seed_corpora() {
     write("manifest", "demo.toml", DEMO_MANIFEST.as_bytes());
     let letterbox = DEMO_MANIFEST
         .replace("resize = \"centre_crop\"", "resize = \"letterbox\"")
-        .replace("interpolation = \"area\"", "interpolation = \"bilinear\"")
+        .replace(
+            "interpolation = \"opencv-area\"",
+            "interpolation = \"pillow-bilinear\"",
+        )
         .replace("letterbox_fill = 0", "letterbox_fill = 114");
     write("manifest", "letterbox.toml", letterbox.as_bytes());
     let minimal = "name = \"tiny\"\nversion = \"0\"\nfile = \"tiny.onnx\"\nclasses = [\"a\", \"b\"]\n\
                    intended_use = \"fuzz corpus only\"\n\n[input]\ntensor = \"x\"\nlayout = \"nhwc\"\n\
                    width = 8\nheight = 8\ncolour_order = \"bgr\"\nscale = 1.0\nmean = [0.0, 0.0, 0.0]\n\
-                   std = [255.0, 255.0, 255.0]\nresize = \"stretch\"\ninterpolation = \"bilinear\"\n\n\
+                   std = [255.0, 255.0, 255.0]\nresize = \"stretch\"\ninterpolation = \"opencv-linear\"\n\n\
                    [output]\nkind = \"probabilities\"\n";
     write("manifest", "minimal.toml", minimal.as_bytes());
 

@@ -285,6 +285,7 @@ fn node_times_cover_the_graphs_nodes_and_leave_inference_unchanged() {
             kind: EngineKind::OnnxRuntime,
             onnxruntime_library: Some(framewise_tests::onnxruntime_library()),
             threads: 1,
+            ..EngineOptions::default()
         },
     )
     .expect("ONNX Runtime loads the demo model");

@@ -176,6 +176,17 @@ async fn every_frame_answers_each_of_1000_frames_once_in_order_with_the_caution(
     };
     assert_eq!(accepted.caution, CAUTION);
     assert_eq!(accepted.classes, demo_model().classes());
+    // The opening says what the demo package's self-test showed on this server.
+    let report = accepted
+        .model
+        .as_ref()
+        .and_then(|m| m.self_test.clone())
+        .expect("a self-test report");
+    assert_eq!(
+        (report.verdict.as_str(), report.cases, report.failed),
+        ("passed", 6, 0)
+    );
+    assert!(report.largest_deviation <= report.tolerance, "{report:?}");
     let answers = answers(&outputs);
     let seqs: Vec<u64> = answers.iter().map(|a| a.seq).collect();
     assert_eq!(
@@ -597,7 +608,7 @@ async fn bad_frames_get_error_answers_and_the_session_goes_on() {
             1080,
             vec![0; 1920 * 1080 * 3 / 2 - 1],
         ),
-        frame_msg(2, 0, PixelFormat::I420, 5, 4, vec![0; 30]),
+        frame_msg(2, 0, PixelFormat::Nv12, 5, 4, vec![0; 30]),
         frame_msg(
             3,
             0,
@@ -854,6 +865,11 @@ async fn a_token_is_required_when_set() {
         .into_inner();
     assert_eq!(reply.models.len(), 1);
     assert_eq!(reply.caution, CAUTION);
+    let identity = reply.models[0].identity.clone().expect("identity");
+    assert_eq!(
+        identity.self_test.map(|r| r.verdict),
+        Some("passed".to_string())
+    );
     assert_eq!(
         t.server.stats.snapshot().frames,
         0,

@@ -71,6 +71,8 @@ pub struct EngineOptions {
     /// Threads one inference may use (intra-op). 1 suits many streams with one worker per core; more suits
     /// one stream that must be as quick as possible.
     pub threads: usize,
+    /// Serve a model whose self-test failed, marked as failing in its identity, instead of refusing it.
+    pub serve_failed_self_test: bool,
 }
 
 impl Default for EngineOptions {
@@ -79,6 +81,7 @@ impl Default for EngineOptions {
             kind: EngineKind::Tract,
             onnxruntime_library: None,
             threads: 1,
+            serve_failed_self_test: false,
         }
     }
 }

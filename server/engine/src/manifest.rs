@@ -4,6 +4,8 @@
 
 use serde::{Deserialize, Serialize};
 
+pub use crate::resize::Recipe;
+
 /// Tensor layout of the model's image input.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
@@ -34,16 +36,6 @@ pub enum ResizeRule {
     CentreCrop,
     /// Scale to fit inside the input keeping the aspect ratio, centred on a fill of `letterbox_fill`.
     Letterbox,
-}
-
-/// Resampling filter.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "lowercase")]
-pub enum Interpolation {
-    /// Bilinear interpolation with a fixed 2x2 support (as OpenCV's INTER_LINEAR).
-    Bilinear,
-    /// Box averaging over the source area of each output pixel (as OpenCV's INTER_AREA).
-    Area,
 }
 
 /// What the model's output holds.
@@ -78,8 +70,9 @@ pub struct InputSpec {
     pub std: [f64; 3],
     /// Resize rule.
     pub resize: ResizeRule,
-    /// Resampling filter.
-    pub interpolation: Interpolation,
+    /// The resize recipe, named after the library whose values it reproduces (`opencv-linear`,
+    /// `opencv-area`, `pillow-bilinear`, `pillow-bicubic`, `float-bilinear`; see [`crate::resize`]).
+    pub interpolation: Recipe,
     /// Grey level of the letterbox fill (0..255).
     #[serde(default)]
     pub letterbox_fill: u8,
@@ -116,6 +109,10 @@ pub struct Manifest {
     /// How the model was made (free text).
     #[serde(default)]
     pub trained: String,
+    /// The package's reference cases (a TOML file relative to the manifest, see [`crate::cases`]), run at
+    /// load on the serving host; empty for none.
+    #[serde(default)]
+    pub self_test: String,
     /// The input recipe.
     pub input: InputSpec,
     /// The output.
@@ -219,7 +216,7 @@ scale = 0.00392156862745098
 mean = [0.0, 0.0, 0.0]
 std = [1.0, 1.0, 1.0]
 resize = "stretch"
-interpolation = "bilinear"
+interpolation = "opencv-linear"
 [output]
 kind = "logits"
 "#;
@@ -249,6 +246,14 @@ kind = "logits"
                 .expect_err("std")
                 .to_string()
                 .contains("input.std")
+        );
+        let old = GOOD.replace("opencv-linear", "bilinear");
+        let text = Manifest::parse(&old)
+            .expect_err("an earlier name")
+            .to_string();
+        assert!(
+            text.contains("input.interpolation") && text.contains("`opencv-linear`"),
+            "{text}"
         );
         let huge = GOOD.replace("width = 8", "width = 100000");
         assert!(

@@ -13,6 +13,7 @@ use sha2::{Digest, Sha256};
 use tract_onnx::pb;
 use tract_onnx::prelude::*;
 
+use crate::cases::{SelfTest, SelfTestOutcome};
 use crate::engine::{EngineKind, EngineOptions};
 pub use crate::engine::{ONNXRUNTIME_ENGINE, TRACT_ENGINE};
 use crate::manifest::{Layout, Manifest, ManifestError, OutputKind};
@@ -23,8 +24,8 @@ pub const MAX_MODEL_BYTES: usize = 1 << 30;
 /// Largest batch a symbolic-batch model is run with.
 pub const MAX_BATCH: usize = 64;
 
-/// Who a model is: enough to trace any result to the exact file.
-#[derive(Debug, Clone, PartialEq, Eq)]
+/// Who a model is: enough to trace any result to the exact file, and whether its self-test passed here.
+#[derive(Debug, Clone, PartialEq)]
 pub struct ModelIdentity {
     /// Name from the manifest.
     pub name: String,
@@ -34,6 +35,8 @@ pub struct ModelIdentity {
     pub sha256: String,
     /// The engine that runs it.
     pub engine: &'static str,
+    /// What the package's self-test showed on this host ([`crate::selftest`]).
+    pub self_test: SelfTestOutcome,
 }
 
 /// One node's part of an inference, from [`Model::node_times`].
@@ -92,6 +95,20 @@ pub enum ModelError {
         engine: &'static str,
         reason: String,
     },
+    /// The package's self-test cases cannot be used.
+    #[error(transparent)]
+    SelfTestInvalid(#[from] crate::cases::CasesError),
+    /// The model's outputs on its own reference cases differ from the validation pipeline's.
+    #[error(
+        "model `{model}` failed its self-test on the {engine} engine: {summary}. The probabilities this host \
+         gives are not the ones the model was validated with: check the manifest's recipe against the \
+         validation pipeline (or serve it marked as failing with --serve-failed-self-test)"
+    )]
+    SelfTestFailed {
+        model: String,
+        engine: &'static str,
+        summary: String,
+    },
 }
 
 /// Why one inference failed.
@@ -106,6 +123,8 @@ pub struct ModelPackage {
     pub manifest: Manifest,
     /// The `.onnx` bytes.
     pub onnx: Arc<[u8]>,
+    /// The reference cases the manifest's `self_test` names, read with their images.
+    pub self_test: Option<SelfTest>,
 }
 
 impl ModelPackage {
@@ -116,7 +135,28 @@ impl ModelPackage {
         if onnx.len() > MAX_MODEL_BYTES {
             return Err(ModelError::TooLarge(onnx.len()));
         }
-        Ok(Self { manifest, onnx })
+        Ok(Self {
+            manifest,
+            onnx,
+            self_test: None,
+        })
+    }
+
+    /// The package with reference cases from a cases file's text (`name` for messages), each image read by
+    /// `read` from its name: for embedded packages.
+    pub fn with_self_test(
+        mut self,
+        name: &str,
+        text: &str,
+        read: impl FnMut(&str) -> Result<Vec<u8>, String>,
+    ) -> Result<Self, ModelError> {
+        self.self_test = Some(SelfTest::parse(
+            name,
+            text,
+            self.manifest.classes.len(),
+            read,
+        )?);
+        Ok(self)
     }
 
     /// Reads a package directory holding `manifest.toml` and the `.onnx` file it names. A path to a
@@ -149,7 +189,15 @@ impl ModelPackage {
                 source,
             })?
             .into();
-        Ok(Self { manifest, onnx })
+        let self_test = match manifest.self_test.as_str() {
+            "" => None,
+            cases => Some(SelfTest::read(&dir.join(cases), manifest.classes.len())?),
+        };
+        Ok(Self {
+            manifest,
+            onnx,
+            self_test,
+        })
     }
 
     /// SHA-256 of the ONNX bytes, lower-case hex.
@@ -199,42 +247,59 @@ impl std::fmt::Debug for Model {
     }
 }
 
-/// Dimension of an ONNX value: a number, a symbol, or unknown.
+/// A declared dimension of an ONNX value: a positive size, or free (a name, -1, 0, or nothing), as exporters
+/// write them.
 #[derive(Debug, Clone, PartialEq)]
 enum Dim {
     Fixed(i64),
-    Symbolic(String),
+    Free(String),
 }
 
 impl std::fmt::Display for Dim {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
             Dim::Fixed(v) => write!(f, "{v}"),
-            Dim::Symbolic(s) if s.is_empty() => f.write_str("?"),
-            Dim::Symbolic(s) => f.write_str(s),
+            Dim::Free(s) if s.is_empty() => f.write_str("?"),
+            Dim::Free(s) => f.write_str(s),
         }
     }
 }
 
-fn value_type(info: &pb::ValueInfoProto) -> Option<(i32, Vec<Dim>)> {
+/// The element type of a tensor value and its declared dimensions (`None` when it declares no shape).
+fn value_type(info: &pb::ValueInfoProto) -> Option<(i32, Option<Vec<Dim>>)> {
     let pb::type_proto::Value::TensorType(tensor) = info.r#type.as_ref()?.value.as_ref()?;
-    let dims = tensor
-        .shape
-        .as_ref()?
-        .dim
-        .iter()
-        .map(|d| match &d.value {
-            Some(pb::tensor_shape_proto::dimension::Value::DimValue(v)) => Dim::Fixed(*v),
-            Some(pb::tensor_shape_proto::dimension::Value::DimParam(s)) => Dim::Symbolic(s.clone()),
-            None => Dim::Symbolic(String::new()),
-        })
-        .collect();
+    let dims = tensor.shape.as_ref().map(|shape| {
+        shape
+            .dim
+            .iter()
+            .map(|d| match &d.value {
+                Some(pb::tensor_shape_proto::dimension::Value::DimValue(v)) if *v > 0 => {
+                    Dim::Fixed(*v)
+                }
+                Some(pb::tensor_shape_proto::dimension::Value::DimValue(v)) => {
+                    Dim::Free(v.to_string())
+                }
+                Some(pb::tensor_shape_proto::dimension::Value::DimParam(s)) => Dim::Free(s.clone()),
+                None => Dim::Free(String::new()),
+            })
+            .collect()
+    });
     Some((tensor.elem_type, dims))
 }
 
 fn shape_text(dims: &[Dim]) -> String {
     let parts: Vec<String> = dims.iter().map(|d| d.to_string()).collect();
     format!("[{}]", parts.join(", "))
+}
+
+/// What the graph's image input needs: the batch-1 shape in the manifest's layout, whether the graph left its
+/// batch free (so that tract may run several frames at once), and whether any dimension was free or missing
+/// (so that the engines get a copy with the manifest's sizes written in).
+#[derive(Debug, Clone, PartialEq)]
+struct InputPlan {
+    shape: [usize; 4],
+    batch_free: bool,
+    any_free: bool,
 }
 
 const ONNX_FLOAT: i32 = 1;
@@ -264,15 +329,22 @@ impl Model {
             });
         }
         let onnx = tract_onnx::onnx();
-        let proto = onnx
+        let mut proto = onnx
             .proto_model_for_read(&mut &package.onnx[..])
             .map_err(|e| ModelError::NotOnnx(format!("{e:#}")))?;
         let graph = proto
             .graph
             .as_ref()
             .ok_or_else(|| ModelError::NotOnnx("it holds no graph".into()))?;
-        let (batch_symbol, input_shape) = check_input(&manifest, graph)?;
+        let plan = check_input(&manifest, graph)?;
+        let input_shape = plan.shape;
         check_output_declared(&manifest, graph)?;
+        // Free or missing input dimensions are written in from the manifest, in the engines' copy of the
+        // graph (the file and its SHA-256 are untouched): ONNX Runtime takes a 0 literally, and a copy with
+        // concrete sizes lets both engines type every node.
+        if plan.any_free {
+            fix_input_shape(&mut proto, &manifest.input.tensor, input_shape);
+        }
 
         let use_onnxruntime = match options.kind {
             EngineKind::Tract => false,
@@ -286,18 +358,26 @@ impl Model {
             EngineKind::Auto => crate::engine::load_onnxruntime(options).is_ok(),
         };
         let (backend, engine) = if use_onnxruntime {
+            let bytes: Arc<[u8]> = if plan.any_free {
+                use prost::Message;
+                proto.encode_to_vec().into()
+            } else {
+                package.onnx.clone()
+            };
             (
-                onnxruntime_backend(package, &manifest, options)?,
+                onnxruntime_backend(bytes, &manifest, options)?,
                 ONNXRUNTIME_ENGINE,
             )
         } else {
-            check_operators(graph, &onnx)?;
+            if let Some(graph) = proto.graph.as_ref() {
+                check_operators(graph, &onnx)?;
+            }
             let tract = contain_panic(TRACT_ENGINE, || {
                 tract_backend(
                     &onnx,
                     &proto,
                     &manifest,
-                    batch_symbol.is_some(),
+                    plan.batch_free,
                     input_shape,
                     options.threads,
                 )
@@ -309,6 +389,7 @@ impl Model {
             version: manifest.version.clone(),
             sha256,
             engine,
+            self_test: SelfTestOutcome::Absent,
         };
         let model = Self {
             manifest,
@@ -339,6 +420,11 @@ impl Model {
     /// The manifest.
     pub fn manifest(&self) -> &Manifest {
         &self.manifest
+    }
+
+    /// Records what the package's self-test showed ([`crate::selftest::load`]).
+    pub(crate) fn set_self_test(&mut self, outcome: SelfTestOutcome) {
+        self.identity.self_test = outcome;
     }
 
     /// Name, version, SHA-256 and engine.
@@ -469,13 +555,13 @@ impl Model {
 
 #[cfg(feature = "onnxruntime")]
 fn onnxruntime_backend(
-    package: &ModelPackage,
+    onnx: Arc<[u8]>,
     manifest: &Manifest,
     options: &EngineOptions,
 ) -> Result<Backend, ModelError> {
     crate::engine::onnxruntime::OrtModel::new(
         &options.library_path(),
-        package.onnx.clone(),
+        onnx,
         options.threads,
         &manifest.input.tensor,
         &manifest.output.tensor,
@@ -489,7 +575,7 @@ fn onnxruntime_backend(
 
 #[cfg(not(feature = "onnxruntime"))]
 fn onnxruntime_backend(
-    _package: &ModelPackage,
+    _onnx: Arc<[u8]>,
     _manifest: &Manifest,
     _options: &EngineOptions,
 ) -> Result<Backend, ModelError> {
@@ -542,27 +628,40 @@ fn tract_backend(
                 .map_err(engine_error)
         }
     };
+    // A free batch is typed as a symbol, so that plans for other batch sizes can be derived. Some exported
+    // graphs cannot be typed that way (a Reshape whose shape is computed from the input's, for instance):
+    // they are loaded with batch 1, as every frame runs anyway.
     let typed = if symbolic {
         let inference = inference()?;
         let batch = inference.symbols.sym("framewise_batch");
         let mut shape: TVec<TDim> = input_shape.iter().map(|&d| TDim::from(d)).collect();
         shape[0] = batch.clone().into();
-        let typed = inference
+        inference
             .with_input_fact(0, f32::fact(shape).into())
-            .map_err(engine_error)?
-            .into_typed()
-            .map_err(engine_error)?;
-        Some((typed, batch))
+            .and_then(|m| m.into_typed())
+            .ok()
+            .map(|typed| (typed, batch))
     } else {
         None
     };
-    let concrete = match &typed {
-        Some((typed, symbol)) => concretize(typed, symbol, 1).map_err(engine_error)?,
-        None => inference()?
+    let batch_one = || -> Result<TypedModel, ModelError> {
+        inference()?
             .with_input_fact(0, f32::fact(input_shape).into())
-            .map_err(engine_error)?
-            .into_typed()
-            .map_err(engine_error)?,
+            .and_then(|m| m.into_typed())
+            .map_err(|e| ModelError::Engine {
+                engine: TRACT_ENGINE,
+                reason: format!(
+                    "it cannot type the graph with the input `{}` fixed to {input_shape:?}: {e:#}",
+                    manifest.input.tensor
+                ),
+            })
+    };
+    let (concrete, typed) = match typed {
+        Some((typed, symbol)) => match concretize(&typed, &symbol, 1) {
+            Ok(concrete) => (concrete, Some((typed, symbol))),
+            Err(_) => (batch_one()?, None),
+        },
+        None => (batch_one()?, None),
     };
     check_output(manifest, &concrete)?;
     let run_options = tract_run_options(threads);
@@ -722,12 +821,10 @@ fn check_operators(graph: &pb::GraphProto, onnx: &tract_onnx::Onnx) -> Result<()
     Ok(())
 }
 
-/// Checks the graph's image input against the manifest; returns the batch symbol (if symbolic) and the
-/// batch-1 input shape in the manifest's layout.
-fn check_input(
-    manifest: &Manifest,
-    graph: &pb::GraphProto,
-) -> Result<(Option<String>, [usize; 4]), ModelError> {
+/// Checks the graph's image input against the manifest and says what it needs (see [`InputPlan`]). A
+/// dimension the graph fixes must be the manifest's; a free one (a name, -1, 0, or none) takes the
+/// manifest's size; the batch must be free or 1.
+fn check_input(manifest: &Manifest, graph: &pb::GraphProto) -> Result<InputPlan, ModelError> {
     let initializers: Vec<&str> = graph.initializer.iter().map(|t| t.name.as_str()).collect();
     let inputs: Vec<&pb::ValueInfoProto> = graph
         .input
@@ -741,75 +838,115 @@ fn check_input(
             field: "input.tensor",
             manifest: format!("`{}`", spec.tensor),
             graph: format!(
-                "inputs {names:?} (framewise needs exactly one image input, the weights as initializers)"
+                "inputs {} (framewise needs exactly one image input, the weights as initializers)",
+                quoted(&names)
             ),
         });
     }
+    let name = &spec.tensor;
     let (elem, dims) = value_type(inputs[0]).ok_or_else(|| ModelError::Mismatch {
         field: "input.tensor",
-        manifest: format!("`{}` is a tensor", spec.tensor),
+        manifest: format!("`{name}` is a tensor"),
         graph: "no tensor type declared for it".into(),
     })?;
     if elem != ONNX_FLOAT {
         return Err(ModelError::Mismatch {
             field: "input.tensor",
             manifest: "float32 (framewise feeds float32)".into(),
-            graph: format!("element type {elem} (ONNX TensorProto.DataType)"),
+            graph: format!("element type {elem} (ONNX TensorProto.DataType) for `{name}`"),
         });
     }
     let (h, w) = (spec.height as usize, spec.width as usize);
-    let expected: [usize; 4] = match spec.layout {
-        Layout::Nchw => [1, 3, h, w],
-        Layout::Nhwc => [1, h, w, 3],
+    let (expected, axes): ([usize; 4], [&str; 4]) = match spec.layout {
+        Layout::Nchw => ([1, 3, h, w], ["batch", "channels", "height", "width"]),
+        Layout::Nhwc => ([1, h, w, 3], ["batch", "height", "width", "channels"]),
     };
-    if dims.len() != 4 {
+    let declared = dims.unwrap_or_else(|| vec![Dim::Free(String::new()); 4]);
+    if declared.len() != 4 {
         return Err(ModelError::Mismatch {
             field: "input.layout",
-            manifest: format!("{:?} (rank 4)", spec.layout),
-            graph: format!("input shape {}", shape_text(&dims)),
+            manifest: format!("{:?}, a rank-4 image input", spec.layout),
+            graph: format!(
+                "input `{name}` of rank {} ({}); framewise feeds [batch, 3, height, width] (nchw) or [batch, height, width, 3] (nhwc)",
+                declared.len(),
+                shape_text(&declared)
+            ),
         });
     }
-    let field_of = |axis: usize| match (spec.layout, axis) {
-        (_, 0) => "input.tensor",
-        (Layout::Nchw, 1) | (Layout::Nhwc, 3) => "input.layout",
-        (Layout::Nchw, 2) | (Layout::Nhwc, 1) => "input.height",
-        _ => "input.width",
+    let field_of = |axis: &str| match axis {
+        "height" => "input.height",
+        "width" => "input.width",
+        "channels" => "input.layout",
+        _ => "input.tensor",
     };
-    let mut batch_symbol = None;
-    for (axis, dim) in dims.iter().enumerate() {
-        match dim {
-            Dim::Fixed(v) if *v == expected[axis] as i64 => {}
-            Dim::Symbolic(s) if axis == 0 => batch_symbol = Some(s.clone()),
-            Dim::Symbolic(_) if axis != 0 && field_of(axis) != "input.layout" => {}
-            _ => {
-                let expected_text: Vec<String> = expected
-                    .iter()
-                    .enumerate()
-                    .map(|(i, v)| {
-                        if i == 0 {
-                            "batch".into()
-                        } else {
-                            v.to_string()
-                        }
-                    })
-                    .collect();
-                return Err(ModelError::Mismatch {
-                    field: field_of(axis),
-                    manifest: format!(
-                        "input shape [{}] ({:?})",
-                        expected_text.join(", "),
-                        spec.layout
-                    ),
-                    graph: format!("input shape {}", shape_text(&dims)),
-                });
-            }
+    for (i, dim) in declared.iter().enumerate() {
+        let Dim::Fixed(v) = dim else { continue };
+        if *v == expected[i] as i64 {
+            continue;
         }
+        let axis = axes[i];
+        let fix = match axis {
+            "batch" => "framewise runs one frame at a time: export the model with a batch of 1 or a free batch".to_string(),
+            "channels" => format!(
+                "check input.layout (the model's 3 channels are not on axis {i} of a {:?} layout)",
+                spec.layout
+            ),
+            _ => format!("set {} = {v}, or use a model exported for {} {}", field_of(axis), axis, expected[i]),
+        };
+        return Err(ModelError::Mismatch {
+            field: field_of(axis),
+            manifest: format!(
+                "{axis} {} ({:?} input [{}])",
+                expected[i],
+                spec.layout,
+                expected.map(|d| d.to_string()).join(", ")
+            ),
+            graph: format!(
+                "{axis} {v} on axis {i} of input `{name}` {}; {fix}",
+                shape_text(&declared)
+            ),
+        });
     }
-    Ok((batch_symbol, expected))
+    Ok(InputPlan {
+        shape: expected,
+        batch_free: !matches!(declared[0], Dim::Fixed(_)),
+        any_free: declared.iter().any(|d| !matches!(d, Dim::Fixed(_))),
+    })
+}
+
+fn quoted(names: &[&str]) -> String {
+    let parts: Vec<String> = names.iter().map(|n| format!("`{n}`")).collect();
+    format!("[{}]", parts.join(", "))
+}
+
+/// Writes `shape` into the declared shape of the graph input `name` (its dimensions all fixed).
+fn fix_input_shape(proto: &mut pb::ModelProto, name: &str, shape: [usize; 4]) {
+    use pb::tensor_shape_proto::{Dimension, dimension::Value};
+    let Some(graph) = proto.graph.as_mut() else {
+        return;
+    };
+    let Some(input) = graph.input.iter_mut().find(|i| i.name == name) else {
+        return;
+    };
+    let Some(pb::type_proto::Value::TensorType(tensor)) =
+        input.r#type.as_mut().and_then(|t| t.value.as_mut())
+    else {
+        return;
+    };
+    tensor.shape = Some(pb::TensorShapeProto {
+        dim: shape
+            .iter()
+            .map(|&d| Dimension {
+                value: Some(Value::DimValue(d as i64)),
+                ..Default::default()
+            })
+            .collect(),
+    });
 }
 
 fn check_output_declared(manifest: &Manifest, graph: &pb::GraphProto) -> Result<(), ModelError> {
     let names: Vec<&str> = graph.output.iter().map(|o| o.name.as_str()).collect();
+    let names = quoted(&names);
     let wanted = &manifest.output.tensor;
     let info = if wanted.is_empty() {
         graph.output.first()
@@ -819,7 +956,7 @@ fn check_output_declared(manifest: &Manifest, graph: &pb::GraphProto) -> Result<
     let info = info.ok_or_else(|| ModelError::Mismatch {
         field: "output.tensor",
         manifest: format!("`{wanted}`"),
-        graph: format!("outputs {names:?}"),
+        graph: format!("outputs {names}"),
     })?;
     if let Some((elem, _)) = value_type(info)
         && elem != ONNX_FLOAT

@@ -7,7 +7,7 @@ use std::time::Instant;
 
 use crate::filter::{Decider, Decision, DecisionSpec, FilterSpec, SettingsError, TemporalFilter};
 use crate::frame::{
-    self, DecodeScratch, FrameError, FrameLimits, FrameRef, Region, RgbImage, YuvSpec,
+    self, DecodeScratch, FrameError, FrameLimits, FrameRef, Needed, Region, RgbImage, YuvSpec,
 };
 use crate::latency::StageTimings;
 use crate::model::{InferenceError, Model};
@@ -76,6 +76,7 @@ pub struct Scratch {
     rgb: RgbImage,
     pre: Preprocessor,
     rows: Vec<bool>,
+    cols: Vec<bool>,
     /// The last prepared input tensor.
     pub tensor: Vec<f32>,
 }
@@ -103,29 +104,30 @@ pub fn prepare(
 ) -> Result<(QualityMeasures, u64), FrameError> {
     let start = Instant::now();
     let input = &model.manifest().input;
-    // Only the rows the resize reads are converted, where the format allows (NV12 and I420 shrunk with
-    // bilinear interpolation); the size is the region's, or the frame's, known before decoding for raw
-    // formats only.
+    // Only the pixels the resize reads are converted (OpenCV's linear recipes read two rows and two columns
+    // per output); the size is the region's, or the frame's, known before decoding for raw formats only.
     let size = match spec.region {
         Some(r) => Some((r.width, r.height)),
         None if !frame.format.is_encoded() => Some((frame.width, frame.height)),
         None => None,
     };
-    let rows = match size {
-        Some((w, h)) if preprocess::rows_read(input, w, h, &mut scratch.rows) => {
-            Some(scratch.rows.as_slice())
-        }
-        _ => None,
+    let (sparse_rows, sparse_cols) = match size {
+        Some((w, h)) => preprocess::pixels_read(input, w, h, &mut scratch.rows, &mut scratch.cols),
+        None => (false, false),
+    };
+    let needed = Needed {
+        rows: sparse_rows.then_some(scratch.rows.as_slice()),
+        cols: sparse_cols.then_some(scratch.cols.as_slice()),
     };
     // A packed RGB8 frame taken whole is read where it lies; every other frame is converted first.
-    let rgb = frame::read_rgb_rows(
+    let rgb = frame::read_rgb(
         frame,
         spec.region,
         spec.yuv,
         &spec.limits,
         &mut scratch.decode,
         &mut scratch.rgb,
-        rows,
+        &needed,
     )?;
     let prepared = scratch.pre.prepare_view(input, rgb, &mut scratch.tensor);
     let (w, h) = prepared.size;

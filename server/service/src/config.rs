@@ -47,6 +47,10 @@ pub struct ServerConfig {
     pub demo_model: bool,
     /// Refuse to start when a model fails to load (otherwise it is logged and skipped).
     pub strict_models: bool,
+    /// Serve a model whose self-test fails (its probabilities on its own reference cases differ from the
+    /// validation pipeline's beyond the package's tolerance), marked as failing in every answer's model
+    /// identity. Off (the default): such a model is refused.
+    pub serve_failed_self_test: bool,
     /// Inference worker threads; 0 for one per core.
     pub workers: usize,
     /// The inference engine for every model without its own `engine`: tract, onnxruntime or auto.
@@ -124,6 +128,7 @@ impl Default for ServerConfig {
             default_model: String::new(),
             demo_model: true,
             strict_models: false,
+            serve_failed_self_test: false,
             workers: 0,
             engine: EngineKind::Tract,
             onnxruntime_library: None,
@@ -274,6 +279,7 @@ impl ServerConfig {
             kind: entry.and_then(|e| e.engine).unwrap_or(self.engine),
             onnxruntime_library: self.onnxruntime_library.clone(),
             threads: self.inference_threads,
+            serve_failed_self_test: self.serve_failed_self_test,
         }
     }
 

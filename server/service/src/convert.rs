@@ -2,11 +2,11 @@
 
 use framewise_engine::filter::{DEFAULT_STEP_MS, Decision};
 use framewise_engine::latency::{Percentiles, StageTimings};
-use framewise_engine::manifest::{ColourOrder, Interpolation, Layout, OutputKind, ResizeRule};
+use framewise_engine::manifest::{ColourOrder, Layout, OutputKind, ResizeRule};
 use framewise_engine::quality::{QualityMeasures, QualityVerdict};
 use framewise_engine::{
     CAUTION, DecisionSpec, FilterSpec, FrameLimits, FrameSpec, Model, PixelFormat, QualitySpec,
-    Region, StreamSettings, YuvMatrix, YuvRange, YuvSpec,
+    Region, SelfTestOutcome, StreamSettings, YuvMatrix, YuvRange, YuvSpec,
 };
 use framewise_proto::v1 as pb;
 
@@ -61,6 +61,9 @@ pub fn pixel_format(value: i32) -> Result<Option<PixelFormat>, i32> {
         P::Nv12 => Some(PixelFormat::Nv12),
         P::I420 => Some(PixelFormat::I420),
         P::Yuyv => Some(PixelFormat::Yuyv),
+        P::Uyvy => Some(PixelFormat::Uyvy),
+        P::I422 => Some(PixelFormat::I422),
+        P::I444 => Some(PixelFormat::I444),
         P::Png => Some(PixelFormat::Png),
         P::Jpeg => Some(PixelFormat::Jpeg),
     })
@@ -78,6 +81,9 @@ pub fn wire_format(format: PixelFormat) -> pb::PixelFormat {
         PixelFormat::Nv12 => P::Nv12,
         PixelFormat::I420 => P::I420,
         PixelFormat::Yuyv => P::Yuyv,
+        PixelFormat::Uyvy => P::Uyvy,
+        PixelFormat::I422 => P::I422,
+        PixelFormat::I444 => P::I444,
         PixelFormat::Png => P::Png,
         PixelFormat::Jpeg => P::Jpeg,
     }
@@ -289,6 +295,35 @@ pub fn identity(model: &Model) -> pb::ModelIdentity {
         version: id.version.clone(),
         sha256: id.sha256.clone(),
         engine: id.engine.to_string(),
+        self_test: Some(self_test_report(&id.self_test)),
+    }
+}
+
+/// A self-test outcome on the wire.
+pub fn self_test_report(outcome: &SelfTestOutcome) -> pb::SelfTestReport {
+    let (cases, failed, tolerance, made_by) = match outcome {
+        SelfTestOutcome::Absent => (0, 0, 0.0, ""),
+        SelfTestOutcome::Passed {
+            cases,
+            tolerance,
+            made_by,
+            ..
+        } => (*cases, 0, *tolerance, made_by.as_str()),
+        SelfTestOutcome::Failed {
+            cases,
+            failed,
+            tolerance,
+            made_by,
+            ..
+        } => (*cases, *failed, *tolerance, made_by.as_str()),
+    };
+    pb::SelfTestReport {
+        verdict: outcome.verdict().to_string(),
+        cases: cases as u32,
+        failed: failed as u32,
+        largest_deviation: outcome.largest_deviation(),
+        tolerance,
+        made_by: made_by.to_string(),
     }
 }
 
@@ -316,11 +351,7 @@ pub fn input_recipe(model: &Model) -> pb::InputRecipe {
             ResizeRule::Letterbox => "letterbox",
         }
         .into(),
-        interpolation: match i.interpolation {
-            Interpolation::Bilinear => "bilinear",
-            Interpolation::Area => "area",
-        }
-        .into(),
+        interpolation: i.interpolation.name().into(),
         scale: i.scale,
         mean: i.mean.to_vec(),
         std: i.std.to_vec(),

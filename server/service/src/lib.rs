@@ -127,7 +127,12 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     };
     for model in registry.all() {
         let id = model.identity();
-        tracing::info!(name = %id.name, version = %id.version, sha256 = %id.sha256, engine = id.engine, "model ready");
+        let self_test = id.self_test.summary();
+        if id.self_test.verdict() == "failed" {
+            tracing::warn!(name = %id.name, version = %id.version, sha256 = %id.sha256, engine = id.engine, %self_test, "model served although its self-test failed (serve_failed_self_test)");
+        } else {
+            tracing::info!(name = %id.name, version = %id.version, sha256 = %id.sha256, engine = id.engine, %self_test, "model ready");
+        }
     }
     let pool = pool::WorkerPool::start(config.worker_count(), config.max_sessions * 2)
         .context("starting worker threads")?;

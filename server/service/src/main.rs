@@ -44,6 +44,10 @@ struct Args {
     /// Refuse to start when any model fails to load.
     #[arg(long)]
     strict_models: bool,
+    /// Serve a model that fails its package's self-test, marked as failing in every answer, instead of
+    /// refusing it.
+    #[arg(long)]
+    serve_failed_self_test: bool,
     /// Inference worker threads (0: one per core).
     #[arg(long)]
     workers: Option<usize>,
@@ -134,6 +138,7 @@ fn config_from(args: Args) -> Result<ServerConfig> {
         config.demo_model = false;
     }
     config.strict_models |= args.strict_models;
+    config.serve_failed_self_test |= args.serve_failed_self_test;
     if let Some(v) = args.workers {
         config.workers = v;
     }

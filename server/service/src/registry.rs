@@ -2,8 +2,8 @@
 
 use std::sync::Arc;
 
-use framewise_engine::{Model, ModelError, ModelPackage};
-use framewise_models_demo::package::{DEMO_MANIFEST, DEMO_ONNX};
+use framewise_engine::{Model, ModelError, ModelPackage, load_model};
+use framewise_models_demo::package::demo_package;
 
 use crate::config::ServerConfig;
 
@@ -36,7 +36,7 @@ impl ModelRegistry {
         for entry in &config.models {
             let source = entry.path.display().to_string();
             let loaded = ModelPackage::read(&entry.path).and_then(|p| {
-                Model::load_with(
+                load_model(
                     &p,
                     entry.sha256.as_deref(),
                     &config.engine_options(Some(entry)),
@@ -49,8 +49,8 @@ impl ModelRegistry {
             }
         }
         if config.demo_model {
-            let demo = ModelPackage::from_parts(DEMO_MANIFEST, DEMO_ONNX)
-                .and_then(|p| Model::load_with(&p, None, &config.engine_options(None)));
+            let demo =
+                demo_package().and_then(|p| load_model(&p, None, &config.engine_options(None)));
             match demo {
                 Ok(model) => models.push(Arc::new(model)),
                 Err(error) => {

@@ -1,13 +1,16 @@
 //! Frames as they arrive (raw pixels with a stride, or PNG/JPEG files), their validation, and their
-//! conversion to packed RGB over a region of interest.
+//! conversion to packed RGB over a region of interest: [`read_rgb`] is the one way in.
 //!
 //! Every size, stride and length is checked before any pixel is read; a bad frame gives a [`FrameError`]
-//! that says what was expected.
+//! that says what was expected. [`decode`] reads PNG and JPEG files as OpenCV and Pillow do; [`yuv`]
+//! converts YUV as OpenCV does (BT.601 limited range) or as the ITU-R equations say (the others).
+
+mod decode;
+mod yuv;
 
 use std::fmt;
 
 use crate::vector::with_avx2;
-use yuvutils_rs as yuv;
 
 /// Pixel layouts a frame may arrive in.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -24,10 +27,18 @@ pub enum PixelFormat {
     Gray8,
     /// 4:2:0: a Y plane, then one interleaved U,V plane, both with the frame's stride.
     Nv12,
-    /// 4:2:0: Y plane, U plane, V plane; chroma planes use half the stride.
+    /// 4:2:0: Y plane, U plane, V plane; chroma planes of `ceil(w / 2)` x `ceil(h / 2)` samples with
+    /// `ceil(stride / 2)` bytes per row.
     I420,
     /// 4:2:2 packed Y0 U Y1 V.
     Yuyv,
+    /// 4:2:2 packed U Y0 V Y1.
+    Uyvy,
+    /// 4:2:2 planar: Y plane, U plane, V plane; chroma planes of `ceil(w / 2)` x `h` samples with
+    /// `ceil(stride / 2)` bytes per row.
+    I422,
+    /// 4:4:4 planar: Y, U and V planes of `w` x `h` samples, all with the stride.
+    I444,
     /// A PNG file.
     Png,
     /// A JPEG file.
@@ -36,7 +47,7 @@ pub enum PixelFormat {
 
 impl PixelFormat {
     /// Every format, in wire order.
-    pub const ALL: [PixelFormat; 10] = [
+    pub const ALL: [PixelFormat; 13] = [
         Self::Rgb8,
         Self::Bgr8,
         Self::Rgba8,
@@ -47,6 +58,9 @@ impl PixelFormat {
         Self::Yuyv,
         Self::Png,
         Self::Jpeg,
+        Self::Uyvy,
+        Self::I422,
+        Self::I444,
     ];
 
     /// Short lower-case name, as used on the command line and in files.
@@ -60,6 +74,9 @@ impl PixelFormat {
             Self::Nv12 => "nv12",
             Self::I420 => "i420",
             Self::Yuyv => "yuyv",
+            Self::Uyvy => "uyvy",
+            Self::I422 => "i422",
+            Self::I444 => "i444",
             Self::Png => "png",
             Self::Jpeg => "jpeg",
         }
@@ -79,7 +96,10 @@ impl PixelFormat {
 
     /// True for YUV formats, which need a matrix and a range.
     pub fn is_yuv(self) -> bool {
-        matches!(self, Self::Nv12 | Self::I420 | Self::Yuyv)
+        matches!(
+            self,
+            Self::Nv12 | Self::I420 | Self::Yuyv | Self::Uyvy | Self::I422 | Self::I444
+        )
     }
 
     /// Bytes of one row of the first plane for a frame `width` pixels wide (raw formats only).
@@ -87,8 +107,8 @@ impl PixelFormat {
         match self {
             Self::Rgb8 | Self::Bgr8 => width * 3,
             Self::Rgba8 | Self::Bgra8 => width * 4,
-            Self::Gray8 | Self::Nv12 | Self::I420 => width,
-            Self::Yuyv => width * 2,
+            Self::Gray8 | Self::Nv12 | Self::I420 | Self::I422 | Self::I444 => width,
+            Self::Yuyv | Self::Uyvy => width * 2,
             Self::Png | Self::Jpeg => 0,
         }
     }
@@ -97,8 +117,18 @@ impl PixelFormat {
     fn chroma_steps(self) -> (u32, u32) {
         match self {
             Self::Nv12 | Self::I420 => (2, 2),
-            Self::Yuyv => (2, 1),
+            Self::Yuyv | Self::Uyvy | Self::I422 => (2, 1),
             _ => (1, 1),
+        }
+    }
+
+    /// The dimensions that must be even: NV12 pairs chroma bytes with the stride of its luma rows, and
+    /// packed 4:2:2 holds two pixels per group. The planar layouts take any size.
+    fn needs_even(self) -> (bool, bool) {
+        match self {
+            Self::Nv12 => (true, true),
+            Self::Yuyv | Self::Uyvy => (true, false),
+            _ => (false, false),
         }
     }
 }
@@ -237,11 +267,6 @@ pub enum FrameError {
         row: u64,
         width: u32,
     },
-    /// I420's chroma stride would not be whole.
-    #[error(
-        "i420 stride is {stride} bytes; it must be even so that the chroma planes have half of it"
-    )]
-    OddStride { stride: u64 },
     /// The buffer length does not fit the size and stride.
     #[error(
         "{format} buffer is {got} bytes, expected {expected} for {width}x{height} with stride {stride}"
@@ -264,9 +289,6 @@ pub enum FrameError {
         width: u32,
         height: u32,
     },
-    /// The colour converter refused the frame (should not happen after validation).
-    #[error("{format} colour conversion failed: {reason}")]
-    ConversionFailed { format: PixelFormat, reason: String },
 }
 
 impl FrameError {
@@ -276,11 +298,10 @@ impl FrameError {
             Self::EmptySize { .. } => "empty_size",
             Self::TooLarge { .. } => "too_large",
             Self::OddDimension { .. } => "odd_dimension",
-            Self::StrideTooShort { .. } | Self::OddStride { .. } => "bad_stride",
+            Self::StrideTooShort { .. } => "bad_stride",
             Self::BadLength { .. } => "bad_length",
             Self::DecodeFailed { .. } => "decode_failed",
             Self::RegionOutside { .. } => "region_outside",
-            Self::ConversionFailed { .. } => "conversion_failed",
         }
     }
 }
@@ -302,7 +323,7 @@ pub struct FrameRef<'a> {
 
 /// A validated raw frame: its geometry is known to fit its buffer.
 #[derive(Debug, Clone, Copy)]
-struct Checked<'a> {
+pub(crate) struct Checked<'a> {
     format: PixelFormat,
     width: u32,
     height: u32,
@@ -351,12 +372,29 @@ impl RgbImage {
     }
 }
 
-/// Reusable buffers for [`to_rgb`], kept per session so that steady streams allocate nothing.
+/// Reusable buffers for [`read_rgb`], kept per session so that steady streams allocate nothing.
 #[derive(Debug, Default)]
 pub struct DecodeScratch {
-    aligned: RgbImage,
     decoded: Vec<u8>,
-    planes: YuvPlanes,
+}
+
+/// The rows and columns of a region that a resize reads ([`crate::resize::samples_read`]), one flag each;
+/// a raw frame converts only those and leaves the rest of the output as it was. `None` (or a mask of the
+/// wrong length) means all.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Needed<'a> {
+    /// One flag per row of the region.
+    pub rows: Option<&'a [bool]>,
+    /// One flag per column of the region.
+    pub cols: Option<&'a [bool]>,
+}
+
+impl Needed<'_> {
+    /// Every row and column.
+    pub const ALL: Needed<'static> = Needed {
+        rows: None,
+        cols: None,
+    };
 }
 
 impl<'a> FrameRef<'a> {
@@ -364,8 +402,8 @@ impl<'a> FrameRef<'a> {
     fn check(&self, limits: &FrameLimits) -> Result<Checked<'a>, FrameError> {
         let (format, width, height) = (self.format, self.width, self.height);
         check_size(format, width, height, limits)?;
-        let (sx, sy) = format.chroma_steps();
-        if sx == 2 && width % 2 != 0 {
+        let (even_w, even_h) = format.needs_even();
+        if even_w && width % 2 != 0 {
             return Err(FrameError::OddDimension {
                 format,
                 width,
@@ -373,7 +411,7 @@ impl<'a> FrameRef<'a> {
                 which: "width",
             });
         }
-        if sy == 2 && height % 2 != 0 {
+        if even_h && height % 2 != 0 {
             return Err(FrameError::OddDimension {
                 format,
                 width,
@@ -395,9 +433,6 @@ impl<'a> FrameRef<'a> {
                 width,
             });
         }
-        if format == PixelFormat::I420 && stride % 2 != 0 {
-            return Err(FrameError::OddStride { stride });
-        }
         let h = u64::from(height);
         // Bytes of the whole frame with every row padded to the stride, and the least the sender may send
         // (the last row unpadded).
@@ -406,11 +441,15 @@ impl<'a> FrameRef<'a> {
                 stride * h + stride * (h / 2),
                 stride * h + stride * (h / 2 - 1) + row,
             ),
-            PixelFormat::I420 => {
-                let c = stride / 2;
+            PixelFormat::I420 | PixelFormat::I422 | PixelFormat::I444 => {
+                // Chroma planes: rows of `c` bytes holding `cw` samples, `ch` rows each.
+                let (sx, sy) = format.chroma_steps();
+                let c = stride.div_ceil(u64::from(sx));
+                let cw = u64::from(width).div_ceil(u64::from(sx));
+                let ch = h.div_ceil(u64::from(sy));
                 (
-                    stride * h + 2 * c * (h / 2),
-                    stride * h + c * (h / 2) + c * (h / 2 - 1) + row / 2,
+                    stride * h + 2 * c * ch,
+                    stride * h + c * ch + c * (ch - 1) + cw,
                 )
             }
             _ => (stride * h, stride * (h - 1) + row),
@@ -461,98 +500,51 @@ fn check_size(
     Ok(())
 }
 
-/// The size a PNG file states in its IHDR chunk, which must come first (ISO/IEC 15948, 5.6), read before
-/// any decoder runs; `None` when the file does not start that way (the decoder then refuses it).
-fn png_declared_size(data: &[u8]) -> Option<(u32, u32)> {
-    let ihdr = data.get(..24)?;
-    if &ihdr[..8] != b"\x89PNG\r\n\x1a\n" || &ihdr[12..16] != b"IHDR" {
-        return None;
-    }
-    let be = |b: &[u8]| u32::from_be_bytes([b[0], b[1], b[2], b[3]]);
-    Some((be(&ihdr[16..20]), be(&ihdr[20..24])))
-}
-
-/// What the PNG decoder may allocate besides the pixel buffer: metadata chunks as read, an inflated ICC
-/// profile (framewise uses neither) and a few rows of 16-bit RGBA. An honest file needs a few times its own
-/// size at most; an inflation bomb is cut off here (the decoder then skips the profile).
-fn png_side_budget(file_len: usize, limits: &FrameLimits) -> u64 {
-    let rows = 4 * 8 * u64::from(limits.max_width);
-    8 * file_len as u64 + rows + (1 << 20)
-}
-
-/// Decodes a PNG or JPEG file to packed RGB8, refusing images beyond the limits before decoding pixels.
+/// The frame's region of interest as packed RGB8: a tightly packed RGB8 frame taken whole is read where it
+/// lies (no copy); every other frame is decoded or converted into `out`, only the rows and columns `needed`
+/// flags for a raw frame (PNG and JPEG are decoded whole).
 ///
-/// A decoder that panics on a malformed file (one JPEG decoder's SIMD transform unwraps a slice that a
-/// broken header made too short) refuses that frame like any other decoding error.
-fn decode_file(
-    format: PixelFormat,
-    data: &[u8],
+/// `region` of `None` means the whole frame. Any region gives the pixels a conversion of the whole frame
+/// would (a YUV region takes the chroma samples covering it, wherever it starts).
+pub fn read_rgb<'a>(
+    frame: &FrameRef<'a>,
+    region: Option<Region>,
+    yuv_spec: YuvSpec,
     limits: &FrameLimits,
-    out: &mut Vec<u8>,
-) -> Result<(u32, u32), FrameError> {
-    let decode = std::panic::AssertUnwindSafe(|| decode_file_unguarded(format, data, limits, out));
-    std::panic::catch_unwind(decode).unwrap_or_else(|payload| {
-        let what = crate::panic_text(payload.as_ref());
-        Err(FrameError::DecodeFailed {
-            format,
-            reason: format!("the decoder failed on this file ({what})"),
-        })
-    })
+    scratch: &mut DecodeScratch,
+    out: &'a mut RgbImage,
+    needed: &Needed<'_>,
+) -> Result<RgbView<'a>, FrameError> {
+    if frame.format.is_encoded() {
+        let (width, height) =
+            decode::decode_file(frame.format, frame.data, limits, &mut scratch.decoded)?;
+        let region = checked_region(region, width, height)?;
+        let packed = Checked {
+            format: PixelFormat::Rgb8,
+            width,
+            height,
+            stride: width as usize * 3,
+            data: &scratch.decoded,
+        };
+        out.reset(region.width, region.height);
+        convert_packed(&packed, region, out, &Needed::ALL);
+        return Ok(out.view());
+    }
+    let checked = frame.check(limits)?;
+    let region = checked_region(region, checked.width, checked.height)?;
+    if let Some(view) = in_place(&checked, region) {
+        return Ok(view);
+    }
+    out.reset(region.width, region.height);
+    if checked.format.is_yuv() {
+        yuv::convert(&checked, region, yuv_spec, out, needed);
+    } else {
+        convert_packed(&checked, region, out, needed);
+    }
+    Ok(out.view())
 }
 
-fn decode_file_unguarded(
-    format: PixelFormat,
-    data: &[u8],
-    limits: &FrameLimits,
-    out: &mut Vec<u8>,
-) -> Result<(u32, u32), FrameError> {
-    use image::ImageDecoder;
-    let fail = |reason: String| FrameError::DecodeFailed { format, reason };
-    if data.is_empty() {
-        return Err(fail("the file is empty".into()));
-    }
-    if format == PixelFormat::Png
-        && let Some((width, height)) = png_declared_size(data)
-    {
-        check_size(format, width, height, limits)?;
-    }
-    let cursor = std::io::Cursor::new(data);
-    let mut decoder: Box<dyn ImageDecoder> = match format {
-        PixelFormat::Png => {
-            // The PNG decoder reads every chunk before the pixels, inflating an ICC profile whole: give it
-            // a budget so that a small file cannot make it allocate gigabytes. The pixel buffer is not
-            // counted here; the limits below bound it.
-            let mut header_limits = image::Limits::no_limits();
-            header_limits.max_alloc = Some(png_side_budget(data.len(), limits));
-            Box::new(
-                image::codecs::png::PngDecoder::with_limits(cursor, header_limits)
-                    .map_err(|e| fail(e.to_string()))?,
-            )
-        }
-        _ => Box::new(
-            image::codecs::jpeg::JpegDecoder::new(cursor).map_err(|e| fail(e.to_string()))?,
-        ),
-    };
-    let (width, height) = decoder.dimensions();
-    check_size(format, width, height, limits)?;
-    let mut image_limits = image::Limits::default();
-    image_limits.max_image_width = Some(limits.max_width);
-    image_limits.max_image_height = Some(limits.max_height);
-    decoder
-        .set_limits(image_limits)
-        .map_err(|e| fail(e.to_string()))?;
-    let image = image::DynamicImage::from_decoder(decoder).map_err(|e| fail(e.to_string()))?;
-    let rgb = image.into_rgb8();
-    out.clear();
-    out.extend_from_slice(rgb.as_raw());
-    Ok((width, height))
-}
-
-/// Converts the region of interest of `frame` to packed RGB8 in `out`.
-///
-/// `region` of `None` means the whole frame. PNG and JPEG are decoded first. For chroma-subsampled formats
-/// the region is widened to whole chroma samples, converted, and cut back to the exact region, so any
-/// region gives the pixels a full-frame conversion would.
+/// As [`read_rgb`], every pixel converted into `out` (a tightly packed RGB8 frame is copied).
 pub fn to_rgb(
     frame: &FrameRef<'_>,
     region: Option<Region>,
@@ -561,110 +553,31 @@ pub fn to_rgb(
     scratch: &mut DecodeScratch,
     out: &mut RgbImage,
 ) -> Result<(), FrameError> {
-    to_rgb_rows(frame, region, yuv_spec, limits, scratch, out, None)
+    if !frame.format.is_encoded() {
+        let checked = frame.check(limits)?;
+        let whole = checked_region(region, checked.width, checked.height)?;
+        if let Some(view) = in_place(&checked, whole) {
+            out.reset(view.width, view.height);
+            out.data.copy_from_slice(view.data);
+            return Ok(());
+        }
+    }
+    read_rgb(frame, region, yuv_spec, limits, scratch, out, &Needed::ALL).map(|_| ())
 }
 
-/// As [`to_rgb`], but when `rows` is given (one flag per row of the region) only the flagged rows need to
-/// be right: a raw frame then converts just those rows and leaves the others as they were in `out`. The
-/// resize reads two rows per output row when it shrinks with bilinear interpolation
-/// ([`crate::preprocess::rows_read`]), so a 1920x1080 frame for a 224x224 input converts 448 of its 1080
-/// rows. PNG and JPEG (decoded whole), a region widened to whole chroma samples, and a `rows` of the wrong
-/// length convert every row.
-pub fn to_rgb_rows(
-    frame: &FrameRef<'_>,
-    region: Option<Region>,
-    yuv_spec: YuvSpec,
-    limits: &FrameLimits,
-    scratch: &mut DecodeScratch,
-    out: &mut RgbImage,
-    rows: Option<&[bool]>,
-) -> Result<(), FrameError> {
-    if frame.format.is_encoded() {
-        let DecodeScratch {
-            decoded,
-            aligned,
-            planes,
-        } = scratch;
-        let (width, height) = decode_file(frame.format, frame.data, limits, decoded)?;
-        let region = checked_region(region, width, height)?;
-        let packed = Checked {
-            format: PixelFormat::Rgb8,
-            width,
-            height,
-            stride: width as usize * 3,
-            data: decoded,
-        };
-        return convert_region(&packed, region, yuv_spec, aligned, planes, out, None);
-    }
-    let checked = frame.check(limits)?;
-    let region = checked_region(region, checked.width, checked.height)?;
-    convert_region(
-        &checked,
-        region,
-        yuv_spec,
-        &mut scratch.aligned,
-        &mut scratch.planes,
-        out,
-        rows,
-    )
-}
-
-/// A tightly packed RGB8 frame taken whole is already what [`to_rgb`] would make: its own bytes, checked as
-/// `to_rgb` checks them, with no copy. `Ok(None)` for every other frame (another format, rows padded to a
-/// stride, a region of interest smaller than the frame), which goes through `to_rgb`.
-pub fn packed_rgb_view<'a>(
-    frame: &FrameRef<'a>,
-    region: Option<Region>,
-    limits: &FrameLimits,
-) -> Result<Option<RgbView<'a>>, FrameError> {
-    if frame.format != PixelFormat::Rgb8 {
-        return Ok(None);
-    }
-    let checked = frame.check(limits)?;
-    let region = checked_region(region, checked.width, checked.height)?;
+/// A tightly packed RGB8 frame taken whole is already packed RGB: its own bytes.
+fn in_place<'a>(checked: &Checked<'a>, region: Region) -> Option<RgbView<'a>> {
     let row = checked.width as usize * 3;
-    let len = row * checked.height as usize;
-    if region != Region::whole(checked.width, checked.height)
-        || checked.stride != row
-        || checked.data.len() < len
-    {
-        return Ok(None);
+    let whole = region == Region::whole(checked.width, checked.height);
+    if checked.format != PixelFormat::Rgb8 || !whole || checked.stride != row {
+        return None;
     }
-    Ok(Some(RgbView {
+    let data = checked.data.get(..row * checked.height as usize)?;
+    Some(RgbView {
         width: checked.width,
         height: checked.height,
-        data: &checked.data[..len],
-    }))
-}
-
-/// The frame's region as packed RGB8: read in place when [`packed_rgb_view`] can, else converted by
-/// [`to_rgb`] into `out`.
-pub fn read_rgb<'a>(
-    frame: &FrameRef<'a>,
-    region: Option<Region>,
-    yuv_spec: YuvSpec,
-    limits: &FrameLimits,
-    scratch: &mut DecodeScratch,
-    out: &'a mut RgbImage,
-) -> Result<RgbView<'a>, FrameError> {
-    read_rgb_rows(frame, region, yuv_spec, limits, scratch, out, None)
-}
-
-/// As [`read_rgb`], converting only the flagged rows where [`to_rgb_rows`] can.
-pub fn read_rgb_rows<'a>(
-    frame: &FrameRef<'a>,
-    region: Option<Region>,
-    yuv_spec: YuvSpec,
-    limits: &FrameLimits,
-    scratch: &mut DecodeScratch,
-    out: &'a mut RgbImage,
-    rows: Option<&[bool]>,
-) -> Result<RgbView<'a>, FrameError> {
-    if let Some(view) = packed_rgb_view(frame, region, limits)? {
-        return Ok(view);
-    }
-    to_rgb_rows(frame, region, yuv_spec, limits, scratch, out, rows)?;
-    Ok(out.view())
+        data,
+    })
 }
 
 fn checked_region(region: Option<Region>, width: u32, height: u32) -> Result<Region, FrameError> {
@@ -679,53 +592,11 @@ fn checked_region(region: Option<Region>, width: u32, height: u32) -> Result<Reg
     Ok(region)
 }
 
-fn convert_region(
-    frame: &Checked<'_>,
-    region: Region,
-    yuv_spec: YuvSpec,
-    aligned: &mut RgbImage,
-    planes: &mut YuvPlanes,
-    out: &mut RgbImage,
-    rows: Option<&[bool]>,
-) -> Result<(), FrameError> {
-    let (sx, sy) = frame.format.chroma_steps();
-    if sx == 1 && sy == 1 {
-        out.reset(region.width, region.height);
-        convert_packed(frame, region, out, rows);
-        return Ok(());
-    }
-    // Widen to whole chroma samples.
-    let x0 = region.x - region.x % sx;
-    let y0 = region.y - region.y % sy;
-    let x1 = (region.x + region.width).next_multiple_of(sx);
-    let y1 = (region.y + region.height).next_multiple_of(sy);
-    let wide = Region {
-        x: x0,
-        y: y0,
-        width: x1 - x0,
-        height: y1 - y0,
-    };
-    if wide == region {
-        out.reset(region.width, region.height);
-        return convert_yuv(frame, region, yuv_spec, planes, out, rows);
-    }
-    aligned.reset(wide.width, wide.height);
-    convert_yuv(frame, wide, yuv_spec, planes, aligned, None)?;
-    out.reset(region.width, region.height);
-    let (dx, dy) = ((region.x - x0) as usize, (region.y - y0) as usize);
-    let src_row = wide.width as usize * 3;
-    let dst_row = region.width as usize * 3;
-    for (row, dst) in out.data.chunks_exact_mut(dst_row).enumerate() {
-        let start = (row + dy) * src_row + dx * 3;
-        dst.copy_from_slice(&aligned.data[start..start + dst_row]);
-    }
-    Ok(())
-}
-
 with_avx2! {
-/// RGB, BGR, RGBA, BGRA and grey to packed RGB: every row, or only the flagged ones.
-fn convert_packed / convert_packed_plain(frame: &Checked<'_>, region: Region, out: &mut RgbImage, rows: Option<&[bool]>) {
-    let rows = rows.filter(|r| r.len() == region.height as usize);
+/// RGB, BGR, RGBA, BGRA and grey to packed RGB: every pixel, or only the needed rows and columns.
+fn convert_packed / convert_packed_plain(frame: &Checked<'_>, region: Region, out: &mut RgbImage, needed: &Needed<'_>) {
+    let rows = needed.rows.filter(|r| r.len() == region.height as usize);
+    let cols = needed.cols.filter(|c| c.len() == region.width as usize);
     let bpp = match frame.format {
         PixelFormat::Rgb8 | PixelFormat::Bgr8 => 3,
         PixelFormat::Rgba8 | PixelFormat::Bgra8 => 4,
@@ -738,6 +609,20 @@ fn convert_packed / convert_packed_plain(frame: &Checked<'_>, region: Region, ou
         }
         let start = (region.y as usize + row) * frame.stride + region.x as usize * bpp;
         let src = &frame.data[start..start + w * bpp];
+        // A sparse set of columns is converted one pixel at a time; whole rows go through the loops
+        // below, which vectorise.
+        if let Some(cols) = cols {
+            for (x, _) in cols.iter().enumerate().filter(|(_, needed)| **needed) {
+                let s = &src[x * bpp..(x + 1) * bpp];
+                let px = match frame.format {
+                    PixelFormat::Rgb8 | PixelFormat::Rgba8 => [s[0], s[1], s[2]],
+                    PixelFormat::Bgr8 | PixelFormat::Bgra8 => [s[2], s[1], s[0]],
+                    _ => [s[0], s[0], s[0]],
+                };
+                dst[x * 3..x * 3 + 3].copy_from_slice(&px);
+            }
+            continue;
+        }
         match frame.format {
             PixelFormat::Rgb8 => dst.copy_from_slice(src),
             PixelFormat::Bgr8 => {
@@ -767,8 +652,10 @@ fn convert_packed / convert_packed_plain(frame: &Checked<'_>, region: Region, ou
 }
 
 /// Encodes packed RGB8 into another format with tightly packed rows: for synthetic frames in tests, benchmarks
-/// and demos (not on the analysis path). YUV uses BT.601 limited range with 2x2 (4:2:0) or 2x1 (4:2:2) chroma
-/// averaging; width and height must be even for YUV. PNG and JPEG (quality 90) use the `image` encoders.
+/// and demos (not on the analysis path). YUV uses BT.601 limited range with the chroma averaged over each
+/// sample's pixels (2x2 for 4:2:0, 2x1 for 4:2:2; a last odd row or column averages what it has); NV12 and
+/// packed 4:2:2 need the even sizes they need on the wire. PNG and JPEG (quality 90) use the `image`
+/// encoders.
 pub fn encode_from_rgb(
     rgb: &[u8],
     width: u32,
@@ -787,8 +674,8 @@ pub fn encode_from_rgb(
             stride: w as u64 * 3,
         });
     }
-    let (sx, sy) = format.chroma_steps();
-    if (sx == 2 && w % 2 != 0) || (sy == 2 && h % 2 != 0) {
+    let (even_w, even_h) = format.needs_even();
+    if (even_w && w % 2 != 0) || (even_h && h % 2 != 0) {
         return Err(FrameError::OddDimension {
             format,
             width,
@@ -844,17 +731,19 @@ pub fn encode_from_rgb(
             crate::preprocess::luma_of(rgb, &mut out);
             out
         }
-        PixelFormat::Nv12 | PixelFormat::I420 => {
+        PixelFormat::Nv12 | PixelFormat::I420 | PixelFormat::I422 | PixelFormat::I444 => {
+            let (sx, sy) = format.chroma_steps();
+            let (sx, sy) = (sx as usize, sy as usize);
             let mut y_plane: Vec<u8> = (0..w * h).map(|i| luma(px(i % w, i / w))).collect();
-            let (mut u, mut v) = (Vec::with_capacity(w * h / 4), Vec::with_capacity(w * h / 4));
-            for cy in 0..h / 2 {
-                for cx in 0..w / 2 {
-                    let m = mean(&[
-                        px(2 * cx, 2 * cy),
-                        px(2 * cx + 1, 2 * cy),
-                        px(2 * cx, 2 * cy + 1),
-                        px(2 * cx + 1, 2 * cy + 1),
-                    ]);
+            let (cw, ch) = (w.div_ceil(sx), h.div_ceil(sy));
+            let (mut u, mut v) = (Vec::with_capacity(cw * ch), Vec::with_capacity(cw * ch));
+            for cy in 0..ch {
+                for cx in 0..cw {
+                    let block: Vec<[f64; 3]> = (cy * sy..((cy + 1) * sy).min(h))
+                        .flat_map(|y| (cx * sx..((cx + 1) * sx).min(w)).map(move |x| (x, y)))
+                        .map(|(x, y)| px(x, y))
+                        .collect();
+                    let m = mean(&block);
                     u.push(cb(m));
                     v.push(cr(m));
                 }
@@ -867,13 +756,17 @@ pub fn encode_from_rgb(
             }
             y_plane
         }
-        PixelFormat::Yuyv => {
+        PixelFormat::Yuyv | PixelFormat::Uyvy => {
             let mut out = Vec::with_capacity(w * h * 2);
             for y in 0..h {
                 for cx in 0..w / 2 {
                     let (a, b) = (px(2 * cx, y), px(2 * cx + 1, y));
                     let m = mean(&[a, b]);
-                    out.extend_from_slice(&[luma(a), cb(m), luma(b), cr(m)]);
+                    if format == PixelFormat::Yuyv {
+                        out.extend_from_slice(&[luma(a), cb(m), luma(b), cr(m)]);
+                    } else {
+                        out.extend_from_slice(&[cb(m), luma(a), cr(m), luma(b)]);
+                    }
                 }
             }
             out
@@ -902,227 +795,6 @@ pub fn encode_from_rgb(
     })
 }
 
-/// Planar 8-bit 4:4:4 YUV (Y plane, U plane, V plane, each `width * height` bytes) to packed RGB8.
-pub fn yuv444_planar_to_rgb(
-    planes: &[u8],
-    width: u32,
-    height: u32,
-    spec: YuvSpec,
-) -> Result<Vec<u8>, FrameError> {
-    let format = PixelFormat::Rgb8;
-    check_size(
-        format,
-        width,
-        height,
-        &FrameLimits {
-            max_width: u32::MAX,
-            max_height: u32::MAX,
-        },
-    )?;
-    let n = width as u64 * height as u64;
-    if planes.len() as u64 != 3 * n {
-        return Err(FrameError::BadLength {
-            format,
-            got: planes.len() as u64,
-            expected: 3 * n,
-            width,
-            height,
-            stride: u64::from(width),
-        });
-    }
-    let n = n as usize;
-    let image = yuv::YuvPlanarImage {
-        y_plane: &planes[..n],
-        y_stride: width,
-        u_plane: &planes[n..2 * n],
-        u_stride: width,
-        v_plane: &planes[2 * n..],
-        v_stride: width,
-        width,
-        height,
-    };
-    let mut out = vec![0u8; 3 * n];
-    let (range, matrix) = yuv_params(spec);
-    yuv::yuv444_to_rgb(&image, &mut out, width * 3, range, matrix).map_err(|e| {
-        FrameError::ConversionFailed {
-            format,
-            reason: e.to_string(),
-        }
-    })?;
-    Ok(out)
-}
-
-fn yuv_params(spec: YuvSpec) -> (yuv::YuvRange, yuv::YuvStandardMatrix) {
-    let range = match spec.range {
-        YuvRange::Limited => yuv::YuvRange::Limited,
-        YuvRange::Full => yuv::YuvRange::Full,
-    };
-    let matrix = match spec.matrix {
-        YuvMatrix::Bt601 => yuv::YuvStandardMatrix::Bt601,
-        YuvMatrix::Bt709 => yuv::YuvStandardMatrix::Bt709,
-    };
-    (range, matrix)
-}
-
-/// NV12, I420 and YUYV over a region aligned to whole chroma samples, to packed RGB (SIMD, yuvutils-rs).
-fn convert_yuv(
-    frame: &Checked<'_>,
-    region: Region,
-    spec: YuvSpec,
-    planes: &mut YuvPlanes,
-    out: &mut RgbImage,
-    rows: Option<&[bool]>,
-) -> Result<(), FrameError> {
-    let (range, matrix) = yuv_params(spec);
-    let rows = rows.filter(|r| r.len() == region.height as usize);
-    let (x, y) = (region.x as usize, region.y as usize);
-    let (w, h) = (region.width as usize, region.height as usize);
-    let stride = frame.stride;
-    let frame_h = frame.height as usize;
-    let rgb_stride = region.width * 3;
-    let fail = |e: yuv::YuvError| FrameError::ConversionFailed {
-        format: frame.format,
-        reason: e.to_string(),
-    };
-    // yuvutils-rs wants each plane as an exact, tightly packed slice for some layouts and walks rows in
-    // pairs for others, so the region's rows are copied into packed planes (less than a third of the
-    // conversion's cost) unless the frame already is exactly that.
-    let whole = region == Region::whole(frame.width, frame.height);
-    match frame.format {
-        PixelFormat::Nv12 => {
-            let (y_plane, uv_plane) = frame.data.split_at(stride * frame_h);
-            let (luma, chroma): (&[u8], &[u8]) =
-                if whole && stride == w && uv_plane.len() == w * h / 2 {
-                    (y_plane, uv_plane)
-                } else {
-                    repack(y_plane, stride, x, y, w, h, &mut planes.y);
-                    repack(uv_plane, stride, x, y / 2, w, h / 2, &mut planes.u);
-                    (&planes.y, &planes.u)
-                };
-            for (a, b) in row_runs(rows, h) {
-                // Rows a..b (a even, or a run of one row) use chroma rows a/2 onwards.
-                let image = yuv::YuvBiPlanarImage {
-                    y_plane: &luma[a * w..b * w],
-                    y_stride: w as u32,
-                    uv_plane: &chroma[a / 2 * w..(b - a).div_ceil(2) * w + a / 2 * w],
-                    uv_stride: w as u32,
-                    width: region.width,
-                    height: (b - a) as u32,
-                };
-                yuv::yuv_nv12_to_rgb(
-                    &image,
-                    &mut out.data[a * rgb_stride as usize..b * rgb_stride as usize],
-                    rgb_stride,
-                    range,
-                    matrix,
-                    yuv::YuvConversionMode::Balanced,
-                )
-                .map_err(fail)?;
-            }
-            Ok(())
-        }
-        PixelFormat::I420 => {
-            let c = stride / 2;
-            let (y_plane, rest) = frame.data.split_at(stride * frame_h);
-            let (u_plane, v_plane) = rest.split_at((c * (frame_h / 2)).min(rest.len()));
-            repack(y_plane, stride, x, y, w, h, &mut planes.y);
-            repack(u_plane, c, x / 2, y / 2, w / 2, h / 2, &mut planes.u);
-            repack(v_plane, c, x / 2, y / 2, w / 2, h / 2, &mut planes.v);
-            let c = w / 2;
-            for (a, b) in row_runs(rows, h) {
-                let chroma = a / 2 * c..(b - a).div_ceil(2) * c + a / 2 * c;
-                let image = yuv::YuvPlanarImage {
-                    y_plane: &planes.y[a * w..b * w],
-                    y_stride: w as u32,
-                    u_plane: &planes.u[chroma.clone()],
-                    u_stride: c as u32,
-                    v_plane: &planes.v[chroma],
-                    v_stride: c as u32,
-                    width: region.width,
-                    height: (b - a) as u32,
-                };
-                let out = &mut out.data[a * rgb_stride as usize..b * rgb_stride as usize];
-                yuv::yuv420_to_rgb(&image, out, rgb_stride, range, matrix).map_err(fail)?;
-            }
-            Ok(())
-        }
-        _ => {
-            let packed: &[u8] = if whole && stride == 2 * w && frame.data.len() == 2 * w * h {
-                frame.data
-            } else {
-                repack(frame.data, stride, 2 * x, y, 2 * w, h, &mut planes.y);
-                &planes.y
-            };
-            // 4:2:2 has chroma on every row, so runs may start on any row.
-            for (a, b) in row_runs(rows, h) {
-                let image = yuv::YuvPackedImage {
-                    yuy: &packed[a * 2 * w..b * 2 * w],
-                    yuy_stride: 2 * w as u32,
-                    width: region.width,
-                    height: (b - a) as u32,
-                };
-                let out = &mut out.data[a * rgb_stride as usize..b * rgb_stride as usize];
-                yuv::yuyv422_to_rgb(&image, out, rgb_stride, range, matrix).map_err(fail)?;
-            }
-            Ok(())
-        }
-    }
-}
-
-/// The runs of rows to convert, as half-open ranges: all `height` rows at once without `rows`, else the
-/// flagged ones. A 4:2:0 converter pairs the first row it is given with the next under one chroma row, so a
-/// run that starts on an odd row is cut after that row.
-fn row_runs(rows: Option<&[bool]>, height: usize) -> impl Iterator<Item = (usize, usize)> {
-    // Without flags, one run of every row; an iterator, so that a steady stream allocates nothing here.
-    let mut whole = rows.is_none().then_some((0, height));
-    let mut y = 0;
-    std::iter::from_fn(move || {
-        let Some(rows) = rows else {
-            return whole.take();
-        };
-        while y < height && !rows[y] {
-            y += 1;
-        }
-        if y == height {
-            return None;
-        }
-        let start = y;
-        y += 1;
-        if start % 2 == 0 {
-            while y < height && rows[y] {
-                y += 1;
-            }
-        }
-        Some((start, y))
-    })
-}
-
-/// Copies `rows` rows of `row_bytes` bytes, starting at byte `x` of row `y` of a plane with `stride`, into
-/// `out` tightly packed. The caller has checked that the plane holds them.
-fn repack(
-    plane: &[u8],
-    stride: usize,
-    x: usize,
-    y: usize,
-    row_bytes: usize,
-    rows: usize,
-    out: &mut Vec<u8>,
-) {
-    out.clear();
-    for r in 0..rows {
-        let start = (y + r) * stride + x;
-        out.extend_from_slice(&plane[start..start + row_bytes]);
-    }
-}
-
-/// Packed planes of a region, reused per session.
-#[derive(Debug, Default)]
-struct YuvPlanes {
-    y: Vec<u8>,
-    u: Vec<u8>,
-    v: Vec<u8>,
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -1140,6 +812,7 @@ mod tests {
             height: 7,
         };
         let every_other: Vec<bool> = (0..region.height).map(|r| r % 2 == 0).collect();
+        let every_third: Vec<bool> = (0..region.width).map(|c| c % 3 == 0).collect();
         for format in [
             PixelFormat::Rgb8,
             PixelFormat::Bgr8,
@@ -1157,14 +830,17 @@ mod tests {
             .check(&FrameLimits::default())
             .expect("a valid frame");
             for rows in [None, Some(&every_other[..])] {
-                let (mut a, mut b) = (RgbImage::default(), RgbImage::default());
-                a.reset(region.width, region.height);
-                b.reset(region.width, region.height);
-                a.data.fill(1);
-                b.data.fill(1);
-                convert_packed(&checked, region, &mut a, rows);
-                convert_packed_plain(&checked, region, &mut b, rows);
-                assert_eq!(a, b, "{format} rows {:?}", rows.map(|r| r.len()));
+                for cols in [None, Some(&every_third[..])] {
+                    let (mut a, mut b) = (RgbImage::default(), RgbImage::default());
+                    a.reset(region.width, region.height);
+                    b.reset(region.width, region.height);
+                    a.data.fill(1);
+                    b.data.fill(1);
+                    let needed = Needed { rows, cols };
+                    convert_packed(&checked, region, &mut a, &needed);
+                    convert_packed_plain(&checked, region, &mut b, &needed);
+                    assert_eq!(a, b, "{format} {needed:?}");
+                }
             }
         }
     }
@@ -1181,18 +857,28 @@ mod tests {
             data,
         };
         let limits = &DEFAULT_FRAME_LIMITS;
+        let read = |frame: &FrameRef<'_>, region| {
+            let mut out = RgbImage::default();
+            let mut scratch = DecodeScratch::default();
+            read_rgb(
+                frame,
+                region,
+                YuvSpec::default(),
+                limits,
+                &mut scratch,
+                &mut out,
+                &Needed::ALL,
+            )
+            .map(|v| (v.data.as_ptr() as usize, v.data.to_vec()))
+        };
         let tight = frame(PixelFormat::Rgb8, 0, &data[..]);
-        let view = packed_rgb_view(&tight, None, limits)
-            .expect("valid")
-            .expect("read in place");
+        let (at, pixels) = read(&tight, None).expect("valid");
         let converted = convert(tight, None, YuvSpec::default()).expect("converts");
-        assert_eq!(view, converted.view(), "the same pixels as a conversion");
-        assert_eq!(view.data.as_ptr(), data.as_ptr(), "no copy");
+        assert_eq!(pixels, converted.data, "the same pixels as a conversion");
+        assert_eq!(at, data.as_ptr() as usize, "no copy");
         // The whole frame named as a region is still the whole frame.
-        assert!(matches!(
-            packed_rgb_view(&tight, Some(Region::whole(w, h)), limits),
-            Ok(Some(_))
-        ));
+        let (at, _) = read(&tight, Some(Region::whole(w, h))).expect("valid");
+        assert_eq!(at, data.as_ptr() as usize);
         // Anything else is converted: a smaller region, padded rows, another format.
         let small = Region {
             x: 1,
@@ -1200,24 +886,20 @@ mod tests {
             width: 2,
             height: 2,
         };
-        assert!(matches!(
-            packed_rgb_view(&tight, Some(small), limits),
-            Ok(None)
-        ));
+        let (at, pixels) = read(&tight, Some(small)).expect("valid");
+        assert_ne!(at, data.as_ptr() as usize);
+        assert_eq!(pixels, [&data[3..9], &data[18..24]].concat());
         let padded: Vec<u8> = data
             .chunks(15)
             .flat_map(|row| row.iter().copied().chain([0u8; 3]))
             .collect();
         let strided = frame(PixelFormat::Rgb8, 18, &padded[..]);
-        assert!(matches!(packed_rgb_view(&strided, None, limits), Ok(None)));
-        let bgr = frame(PixelFormat::Bgr8, 0, &data[..]);
-        assert!(matches!(packed_rgb_view(&bgr, None, limits), Ok(None)));
-        // Bad frames are refused as the conversion refuses them.
+        let (at, pixels) = read(&strided, None).expect("valid");
+        assert!(at < padded.as_ptr() as usize || at >= padded.as_ptr() as usize + padded.len());
+        assert_eq!(pixels, data);
+        // Bad frames are refused.
         let short = frame(PixelFormat::Rgb8, 0, &data[..data.len() - 1]);
-        assert_eq!(
-            packed_rgb_view(&short, None, limits).err(),
-            convert(short, None, YuvSpec::default()).err()
-        );
+        assert_eq!(read(&short, None).expect_err("short").kind(), "bad_length");
         let outside = Region {
             x: 4,
             y: 0,
@@ -1225,8 +907,8 @@ mod tests {
             height: 1,
         };
         assert_eq!(
-            packed_rgb_view(&tight, Some(outside), limits).err(),
-            convert(tight, Some(outside), YuvSpec::default()).err()
+            read(&tight, Some(outside)).expect_err("outside").kind(),
+            "region_outside"
         );
     }
 
@@ -1408,7 +1090,7 @@ mod tests {
         );
 
         let frame = FrameRef {
-            format: PixelFormat::I420,
+            format: PixelFormat::Nv12,
             width: 5,
             height: 4,
             stride: 0,
@@ -1595,6 +1277,159 @@ mod tests {
             };
             if to_rgb(&frame, region, spec, &limits, &mut scratch, &mut out).is_ok() {
                 assert_eq!(out.data.len(), out.width as usize * out.height as usize * 3);
+            }
+        }
+    }
+
+    /// The same samples laid out as NV12 or I420, as YUYV, UYVY or I422, and as I444 with each chroma
+    /// sample repeated over the pixels it covers, give the same pixels, in every matrix and range.
+    #[test]
+    fn every_yuv_layout_of_the_same_samples_gives_the_same_pixels() {
+        let (w, h) = (10usize, 6usize);
+        let mut noise = crate::vector::Noise::new(77);
+        let y = noise.bytes(w * h);
+        let (u420, v420) = (noise.bytes(w * h / 4), noise.bytes(w * h / 4));
+        let (u422, v422) = (noise.bytes(w * h / 2), noise.bytes(w * h / 2));
+        let nv12 = [
+            y.clone(),
+            u420.iter().zip(&v420).flat_map(|(a, b)| [*a, *b]).collect(),
+        ]
+        .concat();
+        let i420 = [y.clone(), u420.clone(), v420.clone()].concat();
+        let i422 = [y.clone(), u422.clone(), v422.clone()].concat();
+        let pack = |order: [usize; 4]| -> Vec<u8> {
+            (0..h)
+                .flat_map(|r| (0..w / 2).map(move |c| (r, c)))
+                .flat_map(|(r, c)| {
+                    let group = [
+                        y[r * w + 2 * c],
+                        u422[r * w / 2 + c],
+                        y[r * w + 2 * c + 1],
+                        v422[r * w / 2 + c],
+                    ];
+                    order.map(|i| group[i])
+                })
+                .collect()
+        };
+        let (yuyv, uyvy) = (pack([0, 1, 2, 3]), pack([1, 0, 3, 2]));
+        let spread = |u: &[u8], sy: usize| -> Vec<u8> {
+            (0..w * h)
+                .map(|i| u[(i / w / sy) * (w / 2) + (i % w) / 2])
+                .collect()
+        };
+        let i444_420 = [y.clone(), spread(&u420, 2), spread(&v420, 2)].concat();
+        let i444_422 = [y.clone(), spread(&u422, 1), spread(&v422, 1)].concat();
+        for matrix in [YuvMatrix::Bt601, YuvMatrix::Bt709] {
+            for range in [YuvRange::Limited, YuvRange::Full] {
+                let spec = YuvSpec { matrix, range };
+                let frame = |format, data: &[u8]| -> Vec<u8> {
+                    let f = FrameRef {
+                        format,
+                        width: w as u32,
+                        height: h as u32,
+                        stride: 0,
+                        data,
+                    };
+                    convert(f, None, spec).expect("converts").data
+                };
+                let a = frame(PixelFormat::I420, &i420);
+                assert_eq!(a, frame(PixelFormat::Nv12, &nv12), "{spec:?}");
+                assert_eq!(a, frame(PixelFormat::I444, &i444_420), "{spec:?}");
+                let b = frame(PixelFormat::I422, &i422);
+                assert_eq!(b, frame(PixelFormat::Yuyv, &yuyv), "{spec:?}");
+                assert_eq!(b, frame(PixelFormat::Uyvy, &uyvy), "{spec:?}");
+                assert_eq!(b, frame(PixelFormat::I444, &i444_422), "{spec:?}");
+            }
+        }
+    }
+
+    /// An odd-sized I420 frame (planes of ceil(w/2) x ceil(h/2) chroma samples, as Y4M lays them out) gives
+    /// the pixels of the even frame one column and row larger with the same chroma, cut to its size.
+    #[test]
+    fn odd_sized_i420_is_the_cut_of_the_even_frame() {
+        let (w, h) = (7usize, 5usize);
+        let mut noise = crate::vector::Noise::new(5);
+        let (cw, ch) = (4usize, 3usize);
+        let (u, v) = (noise.bytes(cw * ch), noise.bytes(cw * ch));
+        let big_y = noise.bytes((w + 1) * (h + 1));
+        let small_y: Vec<u8> = (0..h)
+            .flat_map(|r| big_y[r * (w + 1)..r * (w + 1) + w].to_vec())
+            .collect();
+        let big = [big_y, u.clone(), v.clone()].concat();
+        let small = [small_y, u, v].concat();
+        let rgb = |data: &[u8], w: usize, h: usize| {
+            let f = FrameRef {
+                format: PixelFormat::I420,
+                width: w as u32,
+                height: h as u32,
+                stride: 0,
+                data,
+            };
+            convert(f, None, YuvSpec::default()).expect("converts").data
+        };
+        let big = rgb(&big, w + 1, h + 1);
+        let cut: Vec<u8> = (0..h)
+            .flat_map(|r| big[r * (w + 1) * 3..(r * (w + 1) + w) * 3].to_vec())
+            .collect();
+        assert_eq!(rgb(&small, w, h), cut);
+    }
+
+    /// Converting only the needed rows and columns writes exactly those, with the values a whole conversion
+    /// gives, and leaves the rest as it was, for every raw format.
+    #[test]
+    fn only_the_needed_pixels_are_written() {
+        let (w, h) = (12u32, 8u32);
+        let region = Region {
+            x: 1,
+            y: 1,
+            width: 9,
+            height: 6,
+        };
+        let rows: Vec<bool> = (0..region.height).map(|r| r % 3 != 1).collect();
+        let cols: Vec<bool> = (0..region.width).map(|c| c % 4 == 0 || c == 5).collect();
+        let needed = Needed {
+            rows: Some(&rows),
+            cols: Some(&cols),
+        };
+        let mut noise = crate::vector::Noise::new(21);
+        for format in PixelFormat::ALL.into_iter().filter(|f| !f.is_encoded()) {
+            let rgb = noise.bytes((w * h * 3) as usize);
+            let data = encode_from_rgb(&rgb, w, h, format).expect("encodes");
+            let frame = FrameRef {
+                format,
+                width: w,
+                height: h,
+                stride: 0,
+                data: &data,
+            };
+            let whole = convert(frame, Some(region), YuvSpec::default()).expect("converts");
+            let mut part = RgbImage {
+                width: region.width,
+                height: region.height,
+                data: vec![0xA5; whole.data.len()],
+            };
+            let mut scratch = DecodeScratch::default();
+            let view = read_rgb(
+                &frame,
+                Some(region),
+                YuvSpec::default(),
+                &DEFAULT_FRAME_LIMITS,
+                &mut scratch,
+                &mut part,
+                &needed,
+            )
+            .expect("converts")
+            .data
+            .to_vec();
+            for (r, &row_needed) in rows.iter().enumerate() {
+                for (c, &col_needed) in cols.iter().enumerate() {
+                    let i = (r * region.width as usize + c) * 3;
+                    if row_needed && col_needed {
+                        assert_eq!(view[i..i + 3], whole.data[i..i + 3], "{format} ({c}, {r})");
+                    } else {
+                        assert_eq!(view[i..i + 3], [0xA5; 3], "{format} ({c}, {r}) was written");
+                    }
+                }
             }
         }
     }
