@@ -109,7 +109,7 @@ pub fn run(frames: usize, sizes: &[String], formats: &[String]) -> Result<serde_
     Ok(json!({"preprocess": rows}))
 }
 
-/// The model's own recipe in its three parts (conversion of the pixels the resize reads; resize and
+/// The model's own recipe in its three parts (conversion of the rows the resize reads; resize and
 /// normalisation; quality measures), timed one by one; medians in milliseconds.
 fn parts(
     models: &[(Recipe, Model)],
@@ -128,15 +128,11 @@ fn parts(
         Preprocessor::new(),
         Vec::new(),
     );
-    let (mut rows, mut cols) = (Vec::new(), Vec::new());
+    let mut rows = Vec::new();
     let mut times: [Vec<f64>; 3] = Default::default();
     for (i, frame) in refs.iter().cycle().take(frames + 5).enumerate() {
-        let (sparse_rows, sparse_cols) =
-            prep::pixels_read(spec, frame.width, frame.height, &mut rows, &mut cols);
-        let needed = Needed {
-            rows: sparse_rows.then_some(rows.as_slice()),
-            cols: sparse_cols.then_some(cols.as_slice()),
-        };
+        let sparse = prep::rows_read(spec, frame.width, frame.height, &mut rows);
+        let needed = Needed::rows(sparse.then_some(rows.as_slice()));
         let t0 = Instant::now();
         let view = frame::read_rgb(
             frame,

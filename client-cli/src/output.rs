@@ -63,7 +63,7 @@ pub struct SelfTestInfo {
 }
 
 impl SelfTestInfo {
-    /// One line for people: `passed (6 cases, largest deviation 1.5e-7, tolerance 1e-4)`.
+    /// One line for people: `passed (0 of 6 cases beyond the tolerance 1e-4, largest deviation 1.5e-7)`.
     pub fn summary(&self) -> String {
         match self.verdict.as_str() {
             "passed" | "failed" => format!(
@@ -79,6 +79,7 @@ impl SelfTestInfo {
                 self.largest_deviation
             ),
             "" => "not reported".into(),
+            "not run" => "not run on this load".into(),
             _ => "none (no reference cases in the package)".into(),
         }
     }

@@ -9,9 +9,12 @@ to add to the manifest (self_test = "self-test/cases.toml"). framewise runs thes
 package and refuses the model when its probabilities differ by more than the tolerance: the numbers a
 clinician sees are then shown, on the serving host, to be the ones the model was validated with.
 
-Use the decoder and library the model was validated with: `--decoder opencv` (cv2.imread) pairs with the
-opencv-* recipes, `--decoder pillow` (Image.open(...).convert("RGB")) with the pillow-* ones; they decode
-PNG and JPEG identically (both use libjpeg-turbo and libpng), so either works for those files.
+Use the decoder the model was validated with: `--decoder opencv` (cv2.imread) or `--decoder pillow`
+(Image.open(...).convert("RGB")). framewise decodes as OpenCV does; Pillow agrees on every 8-bit PNG and
+JPEG except two cases: it clips 16-bit greyscale PNGs (OpenCV keeps the high byte), and Image.open does not
+turn a picture as its EXIF orientation says (OpenCV does; ImageOps.exif_transpose would). Cases from such
+files fail the self-test when written with --decoder pillow, as they should: framewise would not give the
+pipeline's numbers on them.
 
 Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
 confirmed by a qualified clinician; check local regulations before any clinical use.
@@ -103,6 +106,7 @@ def tensor_of(picture, spec):
 
 def read_rgb(path, decoder):
     if decoder == "pillow":
+        # What a Pillow pipeline reads: no EXIF turn (framewise turns as OpenCV does; see the module's doc).
         return np.asarray(Image.open(path).convert("RGB"))
     bgr = cv2.imread(path, cv2.IMREAD_COLOR)
     if bgr is None:

@@ -259,6 +259,15 @@ def decode_cases(w, rng):
             buf = io.BytesIO()
             Image.fromarray(rgb).convert(mode).save(buf, "PNG")
             add("png", buf.getvalue(), f"{fw}x{fh} {note}")
+        # EXIF orientation (1 to 8), in a JPEG APP1 segment and a PNG eXIf chunk, as cameras write it.
+        if (fw, fh) == (17, 9):
+            for orientation in range(1, 9):
+                exif = Image.Exif()
+                exif[0x0112] = orientation
+                for kind, fmt in (("jpeg", "JPEG"), ("png", "PNG")):
+                    buf = io.BytesIO()
+                    Image.fromarray(rgb).save(buf, fmt, exif=exif, **({"quality": 90} if fmt == "JPEG" else {}))
+                    add(kind, buf.getvalue(), f"{fw}x{fh} orientation {orientation}")
     return out
 
 

@@ -2,6 +2,7 @@
 
 use framewise_engine::{Model, ModelError, ModelPackage};
 use framewise_tests::{index, read_bytes};
+use prost::Message;
 use tract_onnx::prelude::*;
 
 fn tensor_of(bytes: &[u8], dtype: &str, shape: &[usize]) -> Option<Tensor> {
@@ -176,6 +177,45 @@ fn a_manifest_that_disagrees_with_the_graph_is_refused_naming_the_field() {
         ),
         "{err}"
     );
+    // The message names the axis, the tensor, its declared shape and the fix.
+    let text = err.to_string();
+    for part in [
+        "width 96 on axis 3",
+        "input `frames`",
+        "set input.width = 96",
+    ] {
+        assert!(text.contains(part), "`{part}` missing from: {text}");
+    }
+    // A batch the graph fixes above 1 is refused with what to export instead; a free one is fine.
+    let proto = |batch: i64| {
+        use tract_onnx::pb;
+        let mut model =
+            tract_onnx::pb::ModelProto::decode(framewise_models_demo::package::DEMO_ONNX)
+                .expect("the demo model decodes");
+        let graph = model.graph.as_mut().expect("graph");
+        if let Some(pb::type_proto::Value::TensorType(t)) = graph.input[0]
+            .r#type
+            .as_mut()
+            .and_then(|t| t.value.as_mut())
+            && let Some(shape) = t.shape.as_mut()
+        {
+            shape.dim[0].value = Some(pb::tensor_shape_proto::dimension::Value::DimValue(batch));
+        }
+        model.encode_to_vec()
+    };
+    let package = ModelPackage::from_parts(&demo_manifest(), proto(8)).expect("parses");
+    let text = Model::load(&package, None)
+        .expect_err("a batch of 8")
+        .to_string();
+    assert!(
+        text.contains("batch 8") && text.contains("export the model with a batch of 1"),
+        "{text}"
+    );
+    for free in [-1, 0] {
+        let package = ModelPackage::from_parts(&demo_manifest(), proto(free)).expect("parses");
+        Model::load(&package, None)
+            .unwrap_or_else(|e| panic!("a batch declared {free} is free: {e}"));
+    }
 
     let wrong_name = demo_manifest().replace(r#"tensor = "frames""#, r#"tensor = "images""#);
     let package = ModelPackage::from_parts(&wrong_name, framewise_models_demo::package::DEMO_ONNX)
@@ -232,7 +272,6 @@ fn a_model_with_an_operator_the_engine_cannot_run_is_refused_naming_node_and_ope
 #[test]
 fn node_times_cover_the_graphs_nodes_and_leave_inference_unchanged() {
     use framewise_engine::{EngineKind, EngineOptions};
-    use prost::Message;
     let package = ModelPackage::from_parts(
         framewise_models_demo::package::DEMO_MANIFEST,
         framewise_models_demo::package::DEMO_ONNX,

@@ -30,6 +30,10 @@ use crate::frame::PixelFormat;
 pub const MAX_CASES: usize = 256;
 /// Largest case image (64 MiB).
 pub const MAX_CASE_BYTES: u64 = 64 << 20;
+/// Largest total of all case images (256 MiB): the cases are held in memory for as long as the package.
+pub const MAX_CASES_TOTAL_BYTES: u64 = 256 << 20;
+/// Largest cases file (1 MiB: thousands of cases' worth of text).
+pub const MAX_CASES_FILE_BYTES: u64 = 1 << 20;
 /// Largest tolerance accepted: a wider one would prove nothing.
 pub const MAX_TOLERANCE: f64 = 0.05;
 
@@ -108,7 +112,8 @@ impl SelfTest {
         classes: usize,
         mut read: impl FnMut(&str) -> Result<Vec<u8>, String>,
     ) -> Result<Self, CasesError> {
-        let file: CasesFile = toml::from_str(text).map_err(|e| invalid(name, e.message()))?;
+        let file: CasesFile =
+            toml::from_str(text).map_err(|e| invalid(name, e.to_string().trim_end()))?;
         if !(file.tolerance.is_finite() && file.tolerance > 0.0 && file.tolerance <= MAX_TOLERANCE)
         {
             return Err(invalid(
@@ -129,6 +134,7 @@ impl SelfTest {
             ));
         }
         let mut cases = Vec::with_capacity(file.cases.len());
+        let mut total = 0u64;
         for (i, case) in file.cases.into_iter().enumerate() {
             let at = |problem: String| {
                 invalid(
@@ -136,6 +142,13 @@ impl SelfTest {
                     format!("case {} (`{}`): {problem}", i + 1, case.image),
                 )
             };
+            if !is_inside(&case.image) {
+                return Err(at(
+                    "name the image by a path inside the package, relative to the cases \
+                     file (no `..`, not absolute)"
+                        .into(),
+                ));
+            }
             if case.probabilities.len() != classes {
                 return Err(at(format!(
                     "{} probabilities for a model of {classes} classes",
@@ -171,6 +184,12 @@ impl SelfTest {
                 return Err(at(format!("a {format} frame needs `width` and `height`")));
             }
             let data = read(&case.image).map_err(at)?;
+            total += data.len() as u64;
+            if total > MAX_CASES_TOTAL_BYTES {
+                return Err(at(format!(
+                    "the images so far hold {total} bytes, more than the {MAX_CASES_TOTAL_BYTES} all cases may"
+                )));
+            }
             cases.push(SelfTestCase {
                 image: case.image,
                 format,
@@ -186,26 +205,50 @@ impl SelfTest {
         })
     }
 
-    /// Reads a cases file from disk, its images beside it (each a regular file of at most
-    /// [`MAX_CASE_BYTES`]).
+    /// Reads a cases file (at most [`MAX_CASES_FILE_BYTES`]) from disk, its images beside it (each a regular
+    /// file of at most [`MAX_CASE_BYTES`], all together at most [`MAX_CASES_TOTAL_BYTES`]).
     pub fn read(path: &Path, classes: usize) -> Result<Self, CasesError> {
         let shown = path.display().to_string();
-        let text = std::fs::read_to_string(path)
-            .map_err(|e| invalid(&shown, format!("cannot read it: {e}")))?;
+        let bytes = read_bounded(path, MAX_CASES_FILE_BYTES).map_err(|e| invalid(&shown, e))?;
+        let text = String::from_utf8(bytes).map_err(|_| invalid(&shown, "it is not UTF-8 text"))?;
         let dir = path.parent().unwrap_or(Path::new("."));
         Self::parse(&shown, &text, classes, |image| {
-            let file = dir.join(image);
-            let meta = std::fs::metadata(&file)
-                .map_err(|e| format!("cannot read {}: {e}", file.display()))?;
-            if !meta.is_file() || meta.len() > MAX_CASE_BYTES {
-                return Err(format!(
-                    "{} is not a regular file of at most {MAX_CASE_BYTES} bytes",
-                    file.display()
-                ));
-            }
-            std::fs::read(&file).map_err(|e| format!("cannot read {}: {e}", file.display()))
+            read_bounded(&dir.join(image), MAX_CASE_BYTES)
         })
     }
+}
+
+/// True for a relative path that stays below its starting folder (no `..`, no root, no prefix).
+pub fn is_inside(path: &str) -> bool {
+    use std::path::Component;
+    !path.is_empty()
+        && Path::new(path)
+            .components()
+            .all(|c| matches!(c, Component::Normal(_) | Component::CurDir))
+}
+
+/// The bytes of a regular file of at most `limit` bytes, checked before and while reading (a FIFO, a device
+/// or a file that grows is refused rather than read without end).
+fn read_bounded(path: &Path, limit: u64) -> Result<Vec<u8>, String> {
+    use std::io::Read;
+    let shown = path.display();
+    let meta = std::fs::metadata(path).map_err(|e| format!("cannot read {shown}: {e}"))?;
+    if !meta.is_file() || meta.len() > limit {
+        return Err(format!(
+            "{shown} is not a regular file of at most {limit} bytes"
+        ));
+    }
+    let file = std::fs::File::open(path).map_err(|e| format!("cannot read {shown}: {e}"))?;
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    file.take(limit + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| format!("cannot read {shown}: {e}"))?;
+    if bytes.len() as u64 > limit {
+        return Err(format!(
+            "{shown} grew beyond {limit} bytes while it was read"
+        ));
+    }
+    Ok(bytes)
 }
 
 /// What the self-test showed on this host.
@@ -213,6 +256,9 @@ impl SelfTest {
 pub enum SelfTestOutcome {
     /// The package carries no cases.
     Absent,
+    /// The package carries cases, but this load did not run them ([`crate::model::Model::load_with`]
+    /// alone; servers and the offline paths load through [`crate::selftest::load`]).
+    NotRun,
     /// Every case within the tolerance.
     Passed {
         /// Cases run.
@@ -246,6 +292,7 @@ impl SelfTestOutcome {
     pub fn verdict(&self) -> &'static str {
         match self {
             Self::Absent => "none",
+            Self::NotRun => "not run",
             Self::Passed { .. } => "passed",
             Self::Failed { .. } => "failed",
         }
@@ -254,7 +301,7 @@ impl SelfTestOutcome {
     /// The largest deviation seen (0 without cases).
     pub fn largest_deviation(&self) -> f64 {
         match self {
-            Self::Absent => 0.0,
+            Self::Absent | Self::NotRun => 0.0,
             Self::Passed {
                 largest_deviation, ..
             }
@@ -268,6 +315,7 @@ impl SelfTestOutcome {
     pub fn summary(&self) -> String {
         match self {
             Self::Absent => "none (the package carries no reference cases)".into(),
+            Self::NotRun => "not run on this load".into(),
             Self::Passed {
                 cases,
                 largest_deviation,
@@ -338,6 +386,14 @@ probabilities = [1.0, 0.0]
                 "needs `width` and `height`",
             ),
             (GOOD.replace("made_by", "made_with"), "cases.toml"),
+            (
+                GOOD.replace("\"a.png\"", "\"../a.png\""),
+                "inside the package",
+            ),
+            (
+                GOOD.replace("\"a.png\"", "\"/etc/a.png\""),
+                "inside the package",
+            ),
         ] {
             let text = parse(&bad).expect_err(says).to_string();
             assert!(text.contains(says), "{text}");

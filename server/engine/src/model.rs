@@ -191,6 +191,15 @@ impl ModelPackage {
             .into();
         let self_test = match manifest.self_test.as_str() {
             "" => None,
+            cases if !crate::cases::is_inside(cases) => {
+                return Err(ModelError::Manifest(ManifestError::Field {
+                    field: "self_test",
+                    problem: format!(
+                        "is `{cases}`; name the cases file by a path inside the package, relative to the \
+                         manifest"
+                    ),
+                }));
+            }
             cases => Some(SelfTest::read(&dir.join(cases), manifest.classes.len())?),
         };
         Ok(Self {
@@ -389,7 +398,12 @@ impl Model {
             version: manifest.version.clone(),
             sha256,
             engine,
-            self_test: SelfTestOutcome::Absent,
+            // [`crate::selftest::load`] runs the cases and records what they showed.
+            self_test: if package.self_test.is_some() {
+                SelfTestOutcome::NotRun
+            } else {
+                SelfTestOutcome::Absent
+            },
         };
         let model = Self {
             manifest,

@@ -76,7 +76,6 @@ pub struct Scratch {
     rgb: RgbImage,
     pre: Preprocessor,
     rows: Vec<bool>,
-    cols: Vec<bool>,
     /// The last prepared input tensor.
     pub tensor: Vec<f32>,
 }
@@ -104,21 +103,21 @@ pub fn prepare(
 ) -> Result<(QualityMeasures, u64), FrameError> {
     let start = Instant::now();
     let input = &model.manifest().input;
-    // Only the pixels the resize reads are converted (OpenCV's linear recipes read two rows and two columns
-    // per output); the size is the region's, or the frame's, known before decoding for raw formats only.
+    // Only the rows the resize reads are converted (OpenCV's linear recipes read two per output row), for a
+    // raw frame whose declared size is within the limits and holds the region: anything else is refused by
+    // `read_rgb` before the mask would matter, and a mask sized from a client's numbers is never made.
+    let raw = !frame.format.is_encoded()
+        && frame.width <= spec.limits.max_width
+        && frame.height <= spec.limits.max_height;
     let size = match spec.region {
-        Some(r) => Some((r.width, r.height)),
-        None if !frame.format.is_encoded() => Some((frame.width, frame.height)),
-        None => None,
+        Some(r) if raw => (u64::from(r.x) + u64::from(r.width) <= u64::from(frame.width)
+            && u64::from(r.y) + u64::from(r.height) <= u64::from(frame.height))
+        .then_some((r.width, r.height)),
+        None if raw => Some((frame.width, frame.height)),
+        _ => None,
     };
-    let (sparse_rows, sparse_cols) = match size {
-        Some((w, h)) => preprocess::pixels_read(input, w, h, &mut scratch.rows, &mut scratch.cols),
-        None => (false, false),
-    };
-    let needed = Needed {
-        rows: sparse_rows.then_some(scratch.rows.as_slice()),
-        cols: sparse_cols.then_some(scratch.cols.as_slice()),
-    };
+    let sparse = size.is_some_and(|(w, h)| preprocess::rows_read(input, w, h, &mut scratch.rows));
+    let needed = Needed::rows(sparse.then_some(scratch.rows.as_slice()));
     // A packed RGB8 frame taken whole is read where it lies; every other frame is converted first.
     let rgb = frame::read_rgb(
         frame,

@@ -169,23 +169,12 @@ impl Preprocessor {
     }
 }
 
-/// Flags in `rows` and `cols` (one per row and column of a `width` x `height` region) the pixels the
-/// manifest's resize reads, each `None` when it reads them all; a raw frame then converts only those
-/// ([`crate::frame::Needed`]).
-pub fn pixels_read(
-    spec: &InputSpec,
-    width: u32,
-    height: u32,
-    rows: &mut Vec<bool>,
-    cols: &mut Vec<bool>,
-) -> (bool, bool) {
+/// Flags in `rows` (one per row of a `width` x `height` region) the rows the manifest's resize reads, and
+/// says whether that leaves any out; a raw frame then converts only those ([`crate::frame::Needed`]).
+pub fn rows_read(spec: &InputSpec, width: u32, height: u32, rows: &mut Vec<bool>) -> bool {
     let plan = plan_resize(spec, width, height);
-    let (x, y, w, h) = plan.crop;
-    let recipe = spec.interpolation;
-    (
-        resize::samples_read(recipe, height, y, h, plan.place.height, false, rows),
-        resize::samples_read(recipe, width, x, w, plan.place.width, true, cols),
-    )
+    let (_, y, _, h) = plan.crop;
+    resize::rows_read(spec.interpolation, height, y, h, plan.place.height, rows)
 }
 
 with_avx2! {
@@ -441,11 +430,11 @@ mod tests {
         }
     }
 
-    /// Converting only the pixels `pixels_read` flags gives the tensor exactly what the whole conversion
-    /// gives, whatever the pixels left out hold (here a fixed garbage value, as after another frame), for
-    /// every raw format, recipe, rule and region.
+    /// Converting only the rows `rows_read` flags gives the tensor exactly what the whole conversion gives,
+    /// whatever the rows left out hold (here a fixed garbage value, as after another frame), for every raw
+    /// format, recipe, rule and region.
     #[test]
-    fn converting_only_the_pixels_read_changes_nothing() {
+    fn converting_only_the_rows_read_changes_nothing() {
         use crate::frame::{self, DecodeScratch, FrameRef, Needed, PixelFormat, Region};
         let mut noise = crate::vector::Noise::new(0x2545_f491_4f6c_dd1d);
         let mut specs = vec![
@@ -499,14 +488,10 @@ mod tests {
                 for s in &specs {
                     for region in regions {
                         let size = region.map_or((w, h), |r| (r.width, r.height));
-                        let (mut rows, mut cols) = (Vec::new(), Vec::new());
-                        let (sparse_rows, sparse_cols) =
-                            pixels_read(s, size.0, size.1, &mut rows, &mut cols);
-                        let needed = Needed {
-                            rows: sparse_rows.then_some(rows.as_slice()),
-                            cols: sparse_cols.then_some(cols.as_slice()),
-                        };
-                        sparse_seen += usize::from(sparse_rows || sparse_cols);
+                        let mut rows = Vec::new();
+                        let sparse = rows_read(s, size.0, size.1, &mut rows);
+                        let needed = Needed::rows(sparse.then_some(rows.as_slice()));
+                        sparse_seen += usize::from(sparse);
                         let limits = &frame::DEFAULT_FRAME_LIMITS;
                         let mut scratch = DecodeScratch::default();
                         let mut whole = RgbImage::default();
@@ -549,7 +534,7 @@ mod tests {
                 }
             }
         }
-        assert!(sparse_seen > 60, "only {sparse_seen} cases left pixels out");
+        assert!(sparse_seen > 60, "only {sparse_seen} cases left rows out");
     }
 
     #[test]

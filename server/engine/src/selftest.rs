@@ -18,6 +18,7 @@ pub fn load(
 ) -> Result<Model, ModelError> {
     let mut model = Model::load_with(package, pinned_sha256, options)?;
     let Some(test) = &package.self_test else {
+        model.set_self_test(SelfTestOutcome::Absent);
         return Ok(model);
     };
     let outcome = run(&model, test);
@@ -46,6 +47,10 @@ pub fn run(model: &Model, test: &SelfTest) -> SelfTestOutcome {
             data: &case.data,
         };
         let problem = match pipeline::analyse(model, &frame, &spec, &mut scratch) {
+            Ok(analysed) if analysed.raw.iter().any(|p| !p.is_finite()) => Some(format!(
+                "`{}` gave probabilities that are not numbers: {:?}",
+                case.image, analysed.raw
+            )),
             Ok(analysed) => {
                 let deviation = analysed
                     .raw

@@ -138,6 +138,19 @@ pub fn session_plan(
                 ),
             ));
         }
+        Some(r)
+            if u64::from(r.x) + u64::from(r.width) > u64::from(limits.max_width)
+                || u64::from(r.y) + u64::from(r.height) > u64::from(limits.max_height) =>
+        {
+            return Err(opening_error(
+                "region",
+                format!(
+                    "is {}x{}+{}+{}, beyond the largest frame this server takes ({}x{}); give a region \
+                     inside the frame",
+                    r.width, r.height, r.x, r.y, limits.max_width, limits.max_height
+                ),
+            ));
+        }
         Some(r) => Some(Region {
             x: r.x,
             y: r.y,
@@ -302,7 +315,7 @@ pub fn identity(model: &Model) -> pb::ModelIdentity {
 /// A self-test outcome on the wire.
 pub fn self_test_report(outcome: &SelfTestOutcome) -> pb::SelfTestReport {
     let (cases, failed, tolerance, made_by) = match outcome {
-        SelfTestOutcome::Absent => (0, 0, 0.0, ""),
+        SelfTestOutcome::Absent | SelfTestOutcome::NotRun => (0, 0, 0.0, ""),
         SelfTestOutcome::Passed {
             cases,
             tolerance,
@@ -324,6 +337,10 @@ pub fn self_test_report(outcome: &SelfTestOutcome) -> pb::SelfTestReport {
         largest_deviation: outcome.largest_deviation(),
         tolerance,
         made_by: made_by.to_string(),
+        first_failure: match outcome {
+            SelfTestOutcome::Failed { first, .. } => first.clone(),
+            _ => String::new(),
+        },
     }
 }
 

@@ -14,6 +14,34 @@ const ITU_MAX: f64 = 0.5 + 4e-4;
 /// The mean signed difference allowed per channel against the equations.
 const ITU_BIAS: f64 = 0.05;
 
+/// The same frame with every plane's rows padded to a stride `pad` bytes longer than the first plane's row
+/// (planar chroma rows to `ceil(stride / 2)` for 4:2:x, as the wire contract lays them out), padding 0xA5.
+fn padded(format: PixelFormat, w: usize, h: usize, tight: &[u8], pad: usize) -> (Vec<u8>, usize) {
+    let (cw, ch) = (w.div_ceil(2), h.div_ceil(2));
+    let row = match format {
+        PixelFormat::Yuyv | PixelFormat::Uyvy => 2 * w,
+        _ => w,
+    };
+    let s = row + pad;
+    // (rows, row bytes, stride) per plane.
+    let planes = match format {
+        PixelFormat::Nv12 => vec![(h, w, s), (h / 2, w, s)],
+        PixelFormat::I420 => vec![(h, w, s), (ch, cw, s.div_ceil(2)), (ch, cw, s.div_ceil(2))],
+        PixelFormat::I422 => vec![(h, w, s), (h, cw, s.div_ceil(2)), (h, cw, s.div_ceil(2))],
+        PixelFormat::I444 => vec![(h, w, s), (h, w, s), (h, w, s)],
+        _ => vec![(h, row, s)],
+    };
+    let (mut out, mut at) = (Vec::new(), 0);
+    for (rows, bytes, stride) in planes {
+        for _ in 0..rows {
+            out.extend_from_slice(&tight[at..at + bytes]);
+            out.resize(out.len() + stride - bytes, 0xA5);
+            at += bytes;
+        }
+    }
+    (out, s)
+}
+
 fn convert(frame: &FrameRef<'_>, spec: YuvSpec) -> RgbImage {
     let mut out = RgbImage::default();
     frame::to_rgb(
@@ -55,16 +83,31 @@ fn yuv_equals_opencv_and_the_itu_equations() {
         let ours = convert(&frame, YuvSpec::default());
         // Reference: cv2.cvtColor(COLOR_YUV2RGB_NV12 / _I420 / _YUYV / _UYVY); planar 4:2:2 and 4:4:4 against
         // the packed 4:2:2 and the 4:2:0 conversion of the same samples.
-        let diff = Diff::bytes(
-            &ours.data,
-            &read_bytes(case["opencv"].as_str().expect("opencv")),
-        );
+        let reference = read_bytes(case["opencv"].as_str().expect("opencv"));
+        let diff = Diff::bytes(&ours.data, &reference);
         if diff.differing > 0 {
             failures.push(format!(
                 "{label} BT.601 limited against cv2.cvtColor: {diff}"
             ));
         }
         opencv.add(&diff);
+        // The same samples with padded rows (odd and even padding): the same reference.
+        for pad in [6, 7] {
+            let (w, h) = (frame.width as usize, frame.height as usize);
+            let (data, stride) = padded(format, w, h, &data, pad);
+            let strided = FrameRef {
+                stride: stride as u32,
+                data: &data,
+                ..frame
+            };
+            let diff = Diff::bytes(&convert(&strided, YuvSpec::default()).data, &reference);
+            if diff.differing > 0 {
+                failures.push(format!(
+                    "{label} with a stride of {stride} against cv2.cvtColor: {diff}"
+                ));
+            }
+            opencv.add(&diff);
+        }
         for (key, file) in case["itu"].as_object().expect("itu") {
             let (matrix, range) = match key.as_str() {
                 "bt601_limited" => (YuvMatrix::Bt601, YuvRange::Limited),

@@ -1,4 +1,4 @@
-//! YUV to packed RGB, over any region of interest, converting only the rows and columns a resize reads.
+//! YUV to packed RGB, over any region of interest, converting only the rows a resize reads.
 //!
 //! - BT.601 limited range is OpenCV's `cv2.cvtColor` (`COLOR_YUV2RGB_NV12`, `_I420`, `_YUYV`, `_UYVY`), bit
 //!   for bit: its fixed-point coefficients with 20 fractional bits (`ITUR_BT_601_CY = 1220542`, ...),
@@ -12,7 +12,7 @@
 //! 4:2:2 samples cover 2x2 and 2x1 pixels. Odd widths and heights keep a last chroma sample for the last
 //! column or row (planes of `ceil(w / 2)` samples), as Y4M and ffmpeg lay them out.
 
-use super::{Checked, Needed, PixelFormat, Region, RgbImage, YuvMatrix, YuvRange, YuvSpec};
+use super::{Checked, PixelFormat, Region, RgbImage, YuvMatrix, YuvRange, YuvSpec};
 
 /// Fractional bits of the fixed-point coefficients.
 const SHIFT: u32 = 20;
@@ -69,8 +69,8 @@ impl Coefficients {
         }
     }
 
-    /// One pixel.
-    #[inline(always)]
+    /// One pixel (the reference for [`to_rgb_row`], which computes the same per pixel).
+    #[cfg(test)]
     fn rgb(&self, y: u8, u: u8, v: u8) -> [u8; 3] {
         let mut luma = i32::from(y) - self.y_offset;
         if self.clamp_luma {
@@ -87,48 +87,79 @@ impl Coefficients {
     }
 }
 
-/// Converts the `needed` rows and columns of `region` of a checked YUV frame into `out` (already sized to
-/// the region). Columns and rows not needed keep what `out` held.
+/// One row's samples, spread to one per pixel, reused from frame to frame.
+#[derive(Debug, Default)]
+pub(super) struct RowBuffers {
+    y: Vec<u8>,
+    u: Vec<u8>,
+    v: Vec<u8>,
+}
+
+/// Converts the rows of `region` of a checked YUV frame that `rows` flags (all without it) into `out`
+/// (already sized to the region); the other rows keep what `out` held. Each row's samples are first spread to
+/// one per pixel, then converted in one loop that the compiler vectorises.
 pub(super) fn convert(
     frame: &Checked<'_>,
     region: Region,
     spec: YuvSpec,
     out: &mut RgbImage,
-    needed: &Needed<'_>,
+    rows: Option<&[bool]>,
+    buf: &mut RowBuffers,
 ) {
     let k = Coefficients::new(spec);
     let s = frame.stride;
-    let (w, h) = (frame.width as usize, frame.height as usize);
+    let h = frame.height as usize;
     let data = frame.data;
-    let row_len = region.width as usize * 3;
+    let w = region.width as usize;
     let (x0, y0) = (region.x as usize, region.y as usize);
-    let cols = needed.cols.filter(|c| c.len() == region.width as usize);
-    let rows = needed.rows.filter(|r| r.len() == region.height as usize);
-    for (r, dst) in out.data.chunks_exact_mut(row_len).enumerate() {
+    let rows = rows.filter(|r| r.len() == region.height as usize);
+    for plane in [&mut buf.y, &mut buf.u, &mut buf.v] {
+        plane.resize(w, 0);
+    }
+    for (r, dst) in out.data.chunks_exact_mut(w * 3).enumerate() {
         if rows.is_some_and(|rows| !rows[r]) {
             continue;
         }
         let fy = y0 + r;
-        // Each layout's (Y, U, V) of frame column `fx` on this row.
-        match frame.format {
+        let luma: &[u8] = match frame.format {
             PixelFormat::I420 | PixelFormat::I422 | PixelFormat::I444 => {
                 let (sx, sy) = frame.format.chroma_steps();
                 let (sx, sy) = (sx as usize, sy as usize);
                 let c = if sx == 1 { s } else { s.div_ceil(2) };
                 let ch = h.div_ceil(sy);
-                let luma = &data[fy * s..];
                 let u = &data[s * h + (fy / sy) * c..];
                 let v = &data[s * h + c * ch + (fy / sy) * c..];
                 if sx == 1 {
-                    row(dst, x0, cols, &k, |fx| (luma[fx], u[fx], v[fx]));
+                    buf.u.copy_from_slice(&u[x0..x0 + w]);
+                    buf.v.copy_from_slice(&v[x0..x0 + w]);
                 } else {
-                    row(dst, x0, cols, &k, |fx| (luma[fx], u[fx / 2], v[fx / 2]));
+                    spread(&mut buf.u, &u[x0 / 2..], x0 % 2 == 1);
+                    spread(&mut buf.v, &v[x0 / 2..], x0 % 2 == 1);
                 }
+                &data[fy * s + x0..fy * s + x0 + w]
             }
             PixelFormat::Nv12 => {
-                let luma = &data[fy * s..];
+                // Whole pairs of pixels from an even column take one U,V pair each; an odd first pixel and a
+                // last lone one take theirs alone.
                 let uv = &data[s * h + (fy / 2) * s..];
-                row(dst, x0, cols, &k, |fx| (luma[fx], uv[fx & !1], uv[fx | 1]));
+                let odd = x0 % 2;
+                if odd == 1 {
+                    (buf.u[0], buf.v[0]) = (uv[x0 - 1], uv[x0]);
+                }
+                let pairs = (w - odd) / 2;
+                let chroma = uv[x0 + odd..].chunks_exact(2);
+                let outs = buf.u[odd..]
+                    .chunks_exact_mut(2)
+                    .zip(buf.v[odd..].chunks_exact_mut(2));
+                for ((u, v), c) in outs.zip(chroma) {
+                    u.fill(c[0]);
+                    v.fill(c[1]);
+                }
+                if (w - odd) % 2 == 1 {
+                    let at = x0 + odd + 2 * pairs;
+                    (buf.u[w - 1], buf.v[w - 1]) = (uv[at], uv[at + 1]);
+                }
+                &data[fy * s + x0..fy * s + x0 + w]
             }
             PixelFormat::Yuyv | PixelFormat::Uyvy => {
                 // Byte offsets of Y (even pixel), U, Y (odd pixel), V in each 4-byte group.
@@ -137,45 +168,117 @@ pub(super) fn convert(
                 } else {
                     [1, 0, 3, 2]
                 };
-                let line = &data[fy * s..fy * s + 2 * w];
-                row(dst, x0, cols, &k, |fx| {
-                    let g = (fx & !1) * 2;
-                    let y = if fx & 1 == 0 { y_even } else { y_odd };
+                let line = &data[fy * s..];
+                let pixel = |x: usize| {
+                    let g = (x & !1) * 2;
+                    let y = if x & 1 == 0 { y_even } else { y_odd };
                     (line[g + y], line[g + u], line[g + v])
-                });
+                };
+                // Whole groups (two pixels) from an even column; an odd first pixel and a last lone one alone.
+                let odd = x0 % 2;
+                if odd == 1 {
+                    (buf.y[0], buf.u[0], buf.v[0]) = pixel(x0);
+                }
+                let groups = line[(x0 + odd) * 2..].chunks_exact(4);
+                let outs = buf.y[odd..]
+                    .chunks_exact_mut(2)
+                    .zip(buf.u[odd..].chunks_exact_mut(2))
+                    .zip(buf.v[odd..].chunks_exact_mut(2));
+                for (((py, pu), pv), q) in outs.zip(groups) {
+                    py.copy_from_slice(&[q[y_even], q[y_odd]]);
+                    pu.fill(q[u]);
+                    pv.fill(q[v]);
+                }
+                if (w - odd) % 2 == 1 {
+                    (buf.y[w - 1], buf.u[w - 1], buf.v[w - 1]) = pixel(x0 + w - 1);
+                }
+                &buf.y
             }
-            _ => {}
-        }
+            _ => continue,
+        };
+        to_rgb_row(&k, luma, &buf.u, &buf.v, dst);
     }
 }
 
-/// Writes pixels `x` of one output row (frame column `x0 + x`), every one or the flagged ones.
-#[inline(always)]
-fn row(
-    dst: &mut [u8],
-    x0: usize,
-    cols: Option<&[bool]>,
-    k: &Coefficients,
-    yuv: impl Fn(usize) -> (u8, u8, u8),
-) {
-    let pixels = dst.len() / 3;
-    let mut put = |x: usize| {
-        let (y, u, v) = yuv(x0 + x);
-        dst[x * 3..x * 3 + 3].copy_from_slice(&k.rgb(y, u, v));
+/// Spreads 4:2:x chroma samples to one per pixel: each sample covers two pixels; `odd_start` when the first
+/// pixel is the second of its sample's two.
+fn spread(out: &mut [u8], samples: &[u8], odd_start: bool) {
+    let (first, rest) = if odd_start {
+        out.split_at_mut(1)
+    } else {
+        out.split_at_mut(0)
     };
-    match cols {
-        None => (0..pixels).for_each(&mut put),
-        Some(cols) => cols
-            .iter()
-            .enumerate()
-            .filter(|(_, needed)| **needed)
-            .for_each(|(x, _)| put(x)),
+    if let Some(f) = first.first_mut() {
+        *f = samples[0];
     }
+    let samples = &samples[usize::from(odd_start)..];
+    let n = rest.len() / 2;
+    let mut pairs = rest.chunks_exact_mut(2);
+    for (pair, &c) in pairs.by_ref().zip(samples) {
+        pair[0] = c;
+        pair[1] = c;
+    }
+    if let Some(last) = pairs.into_remainder().first_mut() {
+        *last = samples[n];
+    }
+}
+
+crate::vector::with_avx2! {
+/// One row of per-pixel Y, U and V samples to packed RGB, each pixel as [`Coefficients::rgb`] computes it.
+fn to_rgb_row / to_rgb_row_plain(k: &Coefficients, ys: &[u8], us: &[u8], vs: &[u8], out: &mut [u8]) {
+    // Luma below the offset is taken as the offset only where the coefficients say so (OpenCV's BT.601
+    // limited); elsewhere the floor is below any luma and changes nothing.
+    let floor = if k.clamp_luma { 0 } else { -256 };
+    for (((o, &y), &u), &v) in out.chunks_exact_mut(3).zip(ys).zip(us).zip(vs) {
+        let luma = (i32::from(y) - k.y_offset).max(floor) * k.y + (1 << (SHIFT - 1));
+        let (u, v) = (i32::from(u) - 128, i32::from(v) - 128);
+        let r = ((luma + k.r_v * v) >> SHIFT).clamp(0, 255);
+        let g = ((luma + k.g_u * u + k.g_v * v) >> SHIFT).clamp(0, 255);
+        let b = ((luma + k.b_u * u) >> SHIFT).clamp(0, 255);
+        o.copy_from_slice(&[r as u8, g as u8, b as u8]);
+    }
+}
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The row loop gives each pixel what the one-pixel formula gives, in both copies (see `vector`), for
+    /// every matrix and range and every code value of Y, U and V.
+    #[test]
+    fn the_row_loop_is_the_pixel_formula_in_both_copies() {
+        let ys: Vec<u8> = (0..=255u8).collect();
+        for (u, v) in [(0u8, 255u8), (128, 128), (255, 0), (16, 240), (90, 240)] {
+            let (us, vs) = (vec![u; 256], vec![v; 256]);
+            for matrix in [YuvMatrix::Bt601, YuvMatrix::Bt709] {
+                for range in [YuvRange::Limited, YuvRange::Full] {
+                    let k = Coefficients::new(YuvSpec { matrix, range });
+                    let (mut a, mut b) = (vec![0u8; 768], vec![0u8; 768]);
+                    to_rgb_row(&k, &ys, &us, &vs, &mut a);
+                    to_rgb_row_plain(&k, &ys, &us, &vs, &mut b);
+                    let want: Vec<u8> = ys.iter().flat_map(|&y| k.rgb(y, u, v)).collect();
+                    assert_eq!(a, want, "{matrix:?} {range:?} u={u} v={v}");
+                    assert_eq!(b, want);
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn spreading_covers_each_pixel_with_its_sample() {
+        let samples = [10u8, 20, 30, 40];
+        for (odd, n, want) in [
+            (false, 7, vec![10u8, 10, 20, 20, 30, 30, 40]),
+            (true, 6, vec![10, 20, 20, 30, 30, 40]),
+            (true, 1, vec![10]),
+            (false, 1, vec![10]),
+        ] {
+            let mut out = vec![0u8; n];
+            spread(&mut out, &samples, odd);
+            assert_eq!(out, want, "odd {odd} n {n}");
+        }
+    }
 
     /// Worked examples from the standards: limited-range Y=235, U=V=128 is nominal white and Y=16 black, in
     /// both matrices; full range Y=255 is white.

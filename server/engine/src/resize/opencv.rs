@@ -75,8 +75,7 @@ fn linear_taps(src: usize, dst: usize, horizontal: bool, area_mode: bool) -> Vec
         .collect()
 }
 
-/// The two source samples each output of `INTER_LINEAR` reads along one axis, for
-/// [`super::samples_read`].
+/// The two source samples each output of `INTER_LINEAR` reads along one axis, for [`super::rows_read`].
 pub(super) fn linear_samples(
     src: usize,
     dst: usize,
