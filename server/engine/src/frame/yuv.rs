@@ -147,14 +147,7 @@ pub(super) fn convert(
                     (buf.u[0], buf.v[0]) = (uv[x0 - 1], uv[x0]);
                 }
                 let pairs = (w - odd) / 2;
-                let chroma = uv[x0 + odd..].chunks_exact(2);
-                let outs = buf.u[odd..]
-                    .chunks_exact_mut(2)
-                    .zip(buf.v[odd..].chunks_exact_mut(2));
-                for ((u, v), c) in outs.zip(chroma) {
-                    u.fill(c[0]);
-                    v.fill(c[1]);
-                }
+                spread_uv(&uv[x0 + odd..], &mut buf.u[odd..], &mut buf.v[odd..]);
                 if (w - odd) % 2 == 1 {
                     let at = x0 + odd + 2 * pairs;
                     (buf.u[w - 1], buf.v[w - 1]) = (uv[at], uv[at + 1]);
@@ -179,15 +172,12 @@ pub(super) fn convert(
                 if odd == 1 {
                     (buf.y[0], buf.u[0], buf.v[0]) = pixel(x0);
                 }
-                let groups = line[(x0 + odd) * 2..].chunks_exact(4);
-                let outs = buf.y[odd..]
-                    .chunks_exact_mut(2)
-                    .zip(buf.u[odd..].chunks_exact_mut(2))
-                    .zip(buf.v[odd..].chunks_exact_mut(2));
-                for (((py, pu), pv), q) in outs.zip(groups) {
-                    py.copy_from_slice(&[q[y_even], q[y_odd]]);
-                    pu.fill(q[u]);
-                    pv.fill(q[v]);
+                let groups = &line[(x0 + odd) * 2..];
+                let (py, pu, pv) = (&mut buf.y[odd..], &mut buf.u[odd..], &mut buf.v[odd..]);
+                if frame.format == PixelFormat::Yuyv {
+                    unpack_yuyv(groups, py, pu, pv);
+                } else {
+                    unpack_uyvy(groups, py, pu, pv);
                 }
                 if (w - odd) % 2 == 1 {
                     (buf.y[w - 1], buf.u[w - 1], buf.v[w - 1]) = pixel(x0 + w - 1);
@@ -213,14 +203,53 @@ fn spread(out: &mut [u8], samples: &[u8], odd_start: bool) {
     }
     let samples = &samples[usize::from(odd_start)..];
     let n = rest.len() / 2;
-    let mut pairs = rest.chunks_exact_mut(2);
-    for (pair, &c) in pairs.by_ref().zip(samples) {
-        pair[0] = c;
-        pair[1] = c;
+    spread_pairs(rest, samples);
+    if rest.len() % 2 == 1 {
+        rest[2 * n] = samples[n];
     }
-    if let Some(last) = pairs.into_remainder().first_mut() {
-        *last = samples[n];
+}
+
+crate::vector::with_avx2! {
+/// Each sample to two pixels, for whole pairs of pixels.
+fn spread_pairs / spread_pairs_plain(out: &mut [u8], samples: &[u8]) {
+    for (pair, &c) in out.chunks_exact_mut(2).zip(samples) {
+        pair.copy_from_slice(&[c, c]);
     }
+}
+}
+
+crate::vector::with_avx2! {
+/// NV12's interleaved U,V pairs to one U and one V per pixel, for whole pairs of pixels.
+fn spread_uv / spread_uv_plain(uv: &[u8], us: &mut [u8], vs: &mut [u8]) {
+    for ((u, v), c) in us.chunks_exact_mut(2).zip(vs.chunks_exact_mut(2)).zip(uv.chunks_exact(2)) {
+        u.copy_from_slice(&[c[0], c[0]]);
+        v.copy_from_slice(&[c[1], c[1]]);
+    }
+}
+}
+
+crate::vector::with_avx2! {
+/// Packed Y0 U Y1 V groups to per-pixel Y, U and V, for whole groups.
+fn unpack_yuyv / unpack_yuyv_plain(groups: &[u8], ys: &mut [u8], us: &mut [u8], vs: &mut [u8]) {
+    let outs = ys.chunks_exact_mut(2).zip(us.chunks_exact_mut(2)).zip(vs.chunks_exact_mut(2));
+    for (((y, u), v), q) in outs.zip(groups.chunks_exact(4)) {
+        y.copy_from_slice(&[q[0], q[2]]);
+        u.copy_from_slice(&[q[1], q[1]]);
+        v.copy_from_slice(&[q[3], q[3]]);
+    }
+}
+}
+
+crate::vector::with_avx2! {
+/// Packed U Y0 V Y1 groups to per-pixel Y, U and V, for whole groups.
+fn unpack_uyvy / unpack_uyvy_plain(groups: &[u8], ys: &mut [u8], us: &mut [u8], vs: &mut [u8]) {
+    let outs = ys.chunks_exact_mut(2).zip(us.chunks_exact_mut(2)).zip(vs.chunks_exact_mut(2));
+    for (((y, u), v), q) in outs.zip(groups.chunks_exact(4)) {
+        y.copy_from_slice(&[q[1], q[3]]);
+        u.copy_from_slice(&[q[0], q[0]]);
+        v.copy_from_slice(&[q[2], q[2]]);
+    }
+}
 }
 
 crate::vector::with_avx2! {
@@ -263,6 +292,37 @@ mod tests {
                 }
             }
         }
+    }
+
+    #[test]
+    fn the_gathers_have_both_copies_alike() {
+        let bytes = crate::vector::noise(8, 1000);
+        type Unpack = fn(&[u8], &mut [u8], &mut [u8], &mut [u8]);
+        let run = |f: Unpack| {
+            let (mut y, mut u, mut v) = (vec![0u8; 499], vec![0u8; 499], vec![0u8; 499]);
+            f(&bytes, &mut y, &mut u, &mut v);
+            (y, u, v)
+        };
+        assert_eq!(run(unpack_yuyv), run(unpack_yuyv_plain));
+        assert_eq!(run(unpack_uyvy), run(unpack_uyvy_plain));
+        let (y, u, v) = run(unpack_uyvy);
+        assert_eq!(
+            (y[..4].to_vec(), u[..2].to_vec(), v[..2].to_vec()),
+            (
+                vec![bytes[1], bytes[3], bytes[5], bytes[7]],
+                vec![bytes[0]; 2],
+                vec![bytes[2]; 2]
+            )
+        );
+        let (mut a, mut b, mut c, mut d) = (
+            vec![0u8; 301],
+            vec![0u8; 301],
+            vec![0u8; 301],
+            vec![0u8; 301],
+        );
+        spread_uv(&bytes, &mut a, &mut b);
+        spread_uv_plain(&bytes, &mut c, &mut d);
+        assert_eq!((a, b), (c, d));
     }
 
     #[test]
