@@ -271,7 +271,7 @@ def make_servicer(pb, rpc, model, stats):
                             interpolation=inp["interpolation"], scale=float(inp["scale"]),
                             mean=[float(v) for v in inp["mean"]], std=[float(v) for v in inp["std"]],
                             output=model.out["kind"])
-    description = pb.ModelDescription(identity=identity, classes=model.classes, input=recipe,
+    description = pb.ModelCard(identity=identity, classes=model.classes, input=recipe,
                                       intended_use=model.manifest.get("intended_use", ""),
                                       model_caution=model.manifest.get("caution", ""), caution=CAUTION,
                                       is_default=True)
@@ -279,7 +279,7 @@ def make_servicer(pb, rpc, model, stats):
     id_lock = threading.Lock()
 
     class FrameAnalysis(rpc.FrameAnalysisServicer):
-        def Converse(self, request_iterator, context):
+        def RunSession(self, request_iterator, context):
             first = next(request_iterator, None)
             if first is None or first.WhichOneof("item") != "opening":
                 context.abort(grpc.StatusCode.INVALID_ARGUMENT,
@@ -378,10 +378,10 @@ def make_servicer(pb, rpc, model, stats):
             finally:
                 stats.bump("sessions_open", -1)
 
-        def ListModels(self, request, context):
-            return pb.ListModelsReply(models=[description], caution=CAUTION)
+        def ListModelCards(self, request, context):
+            return pb.ModelCards(models=[description], caution=CAUTION)
 
-        def DescribeModel(self, request, context):
+        def GetModelCard(self, request, context):
             if request.name not in ("", model.name):
                 context.abort(grpc.StatusCode.NOT_FOUND, f"no model named `{request.name}`")
             return description

@@ -28,12 +28,12 @@ struct Floor {
 
 #[tonic::async_trait]
 impl FrameAnalysis for Floor {
-    type ConverseStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
+    type RunSessionStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
 
-    async fn converse(
+    async fn run_session(
         &self,
         request: Request<Streaming<pb::SessionInput>>,
-    ) -> Result<Response<Self::ConverseStream>, Status> {
+    ) -> Result<Response<Self::RunSessionStream>, Status> {
         let mut inbound = request.into_inner();
         // Answers a session may have waiting for the client, as in framewise's sessions.
         let (outbox, answers) = mpsc::channel(framewise_server::config::ANSWER_BUFFER);
@@ -95,17 +95,17 @@ impl FrameAnalysis for Floor {
         Ok(Response::new(ReceiverStream::new(answers)))
     }
 
-    async fn list_models(
+    async fn list_model_cards(
         &self,
-        _: Request<pb::ListModelsRequest>,
-    ) -> Result<Response<pb::ListModelsReply>, Status> {
+        _: Request<pb::ModelCardsRequest>,
+    ) -> Result<Response<pb::ModelCards>, Status> {
         Err(Status::unimplemented(ONLY_FRAMES))
     }
 
-    async fn describe_model(
+    async fn get_model_card(
         &self,
-        _: Request<pb::DescribeModelRequest>,
-    ) -> Result<Response<pb::ModelDescription>, Status> {
+        _: Request<pb::ModelCardRequest>,
+    ) -> Result<Response<pb::ModelCard>, Status> {
         Err(Status::unimplemented(ONLY_FRAMES))
     }
 

@@ -845,7 +845,7 @@ async fn one_session(
     })
     .await?;
     let mut answers = client
-        .converse(tokio_stream::wrappers::ReceiverStream::new(rx))
+        .run_session(tokio_stream::wrappers::ReceiverStream::new(rx))
         .await?
         .into_inner();
     answers.message().await?.context("no SessionAccepted")?;

@@ -172,7 +172,7 @@ pub async fn open(
         .await
         .context("queueing the session opening")?;
     let response = client
-        .converse(with_token(ReceiverStream::new(rx), token)?)
+        .run_session(with_token(ReceiverStream::new(rx), token)?)
         .await
         .map_err(status_error)?;
     let mut answers = response.into_inner();

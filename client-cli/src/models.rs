@@ -10,7 +10,7 @@ use crate::output::{SelfTestInfo, caution_line, table};
 pub async fn run(url: &str, token: Option<&str>, json: bool) -> Result<()> {
     let mut grpc = client::connect(url).await?;
     let reply = grpc
-        .list_models(client::with_token(pb::ListModelsRequest {}, token)?)
+        .list_model_cards(client::with_token(pb::ModelCardsRequest {}, token)?)
         .await
         .map_err(client::status_error)?;
     let reply = reply.into_inner();

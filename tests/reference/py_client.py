@@ -2,8 +2,9 @@
 """A framewise client in Python, to prove the wire contract is usable outside Rust.
 
 Generates stubs from proto/framewise/v1/framewise.proto with grpcio-tools, checks the standard gRPC health
-service with the grpcio-health-checking client, then opens a session, sends 5 synthetic frames (no patient
-data) and checks that each is answered once, with the caution.
+service with the grpcio-health-checking client, lists the services and reads the contract through server
+reflection with the grpcio-reflection client (general-purpose gRPC tools work this way), then opens a session,
+sends 5 synthetic frames (no patient data) and checks that each is answered once, with the caution.
 
 Decision support only, not a diagnosis: framewise outputs are probabilities that can be wrong and must be
 confirmed by a qualified clinician; check local regulations before any clinical use.
@@ -16,6 +17,7 @@ import tempfile
 import grpc
 import numpy as np
 from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_reflection.v1alpha.proto_reflection_descriptor_database import ProtoReflectionDescriptorDatabase
 from grpc_tools import protoc
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
@@ -44,6 +46,17 @@ def main():
     if named != health_pb2.HealthCheckResponse.SERVING:
         sys.exit("framewise.v1.FrameAnalysis is not SERVING")
 
+    # Server reflection: the services, and the session rpc's types read from the server alone.
+    reflection = ProtoReflectionDescriptorDatabase(channel)
+    services = set(reflection.get_services())
+    print("reflection:", ", ".join(sorted(services)))
+    if not {"framewise.v1.FrameAnalysis", "grpc.health.v1.Health"} <= services:
+        sys.exit(f"reflection lists {sorted(services)}")
+    described = reflection.FindFileContainingSymbol("framewise.v1.FrameAnalysis")
+    rpcs = [m.name for s in described.service for m in s.method]
+    if "RunSession" not in rpcs:
+        sys.exit(f"reflection describes {rpcs}")
+
     rng = np.random.default_rng(3)
 
     def inputs():
@@ -55,7 +68,7 @@ def main():
                                                  data=pixels.tobytes()))
 
     stub = rpc.FrameAnalysisStub(channel)
-    outputs = list(stub.Converse(inputs()))
+    outputs = list(stub.RunSession(inputs()))
     kinds = [o.WhichOneof("item") for o in outputs]
     if kinds[0] != "accepted" or kinds[-1] != "summary":
         sys.exit(f"unexpected output order: {kinds}")
@@ -70,7 +83,7 @@ def main():
             sys.exit(f"answer {a.seq} lacks the caution or a result")
         if abs(sum(a.result.raw) - 1.0) > 1e-4:
             sys.exit(f"answer {a.seq}: probabilities sum to {sum(a.result.raw)}")
-    models = stub.ListModels(pb.ListModelsRequest())
+    models = stub.ListModelCards(pb.ModelCardsRequest())
     print("models:", ", ".join(m.identity.name for m in models.models))
     print("answers:", len(answers))
 

@@ -3387,7 +3387,7 @@ async fn a_broken_package_beside_a_good_one_is_reported_by_path_and_refused_when
             .await
             .expect("connects");
     let listed = client
-        .list_models(pb::ListModelsRequest {})
+        .list_model_cards(pb::ModelCardsRequest {})
         .await
         .expect("lists")
         .into_inner();
@@ -3480,16 +3480,16 @@ impl tonic::codec::Codec for RawCodec {
     }
 }
 
-const CONVERSE: &str = "/framewise.v1.FrameAnalysis/Converse";
+const RUN_SESSION: &str = "/framewise.v1.FrameAnalysis/RunSession";
 
-/// Sends raw message bodies on one Converse stream; the status it ended with (OK after a summary).
-async fn converse_raw(
+/// Sends raw message bodies on one RunSession stream; the status it ended with (OK after a summary).
+async fn run_session_raw(
     channel: &tonic::transport::Channel,
     messages: Vec<Vec<u8>>,
 ) -> Result<tonic::Code, String> {
     let mut grpc = tonic::client::Grpc::new(channel.clone());
     grpc.ready().await.map_err(|e| format!("not ready: {e}"))?;
-    let path = tonic::codegen::http::uri::PathAndQuery::from_static(CONVERSE);
+    let path = tonic::codegen::http::uri::PathAndQuery::from_static(RUN_SESSION);
     let request = tonic::Request::new(tokio_stream::iter(messages));
     let run = async {
         let mut answers = match grpc.streaming(request, path, RawCodec).await {
@@ -3513,8 +3513,8 @@ async fn converse_raw(
         .map_err(|_| "no end within 10 s".to_string())
 }
 
-/// Sends a hand-made request body (gRPC framing included) on Converse; the status the server answered.
-async fn converse_framed(
+/// Sends a hand-made request body (gRPC framing included) on RunSession; the status the server answered.
+async fn run_session_framed(
     channel: &tonic::transport::Channel,
     body: String,
 ) -> Result<tonic::Code, String> {
@@ -3522,7 +3522,7 @@ async fn converse_framed(
     let mut channel = channel.clone();
     let request = tonic::codegen::http::Request::builder()
         .method("POST")
-        .uri(CONVERSE)
+        .uri(RUN_SESSION)
         .header("content-type", "application/grpc")
         .header("te", "trailers")
         .body(tonic::body::Body::new(body))
@@ -3648,7 +3648,7 @@ async fn malformed_protobuf_over_the_wire_gets_an_error_status_and_the_server_ke
                 vec![nested_protobuf(&mut rng, depth)]
             }
         };
-        match converse_raw(&channel, messages.clone()).await {
+        match run_session_raw(&channel, messages.clone()).await {
             Ok(code) if allowed.contains(&code) => {
                 *codes.entry(format!("{code:?}")).or_default() += 1
             }
@@ -3694,7 +3694,7 @@ async fn malformed_protobuf_over_the_wire_gets_an_error_status_and_the_server_ke
         ),
     ];
     for (what, body) in framing {
-        match converse_framed(&channel, body).await {
+        match run_session_framed(&channel, body).await {
             Ok(code) if allowed.contains(&code) => {
                 *codes.entry(format!("framing {code:?}")).or_default() += 1
             }
@@ -3720,7 +3720,7 @@ async fn malformed_protobuf_over_the_wire_gets_an_error_status_and_the_server_ke
             valid_frame_bytes(2),
             valid_frame_bytes(3),
         ];
-        let path = tonic::codegen::http::uri::PathAndQuery::from_static(CONVERSE);
+        let path = tonic::codegen::http::uri::PathAndQuery::from_static(RUN_SESSION);
         let mut answers = grpc
             .streaming(
                 tonic::Request::new(tokio_stream::iter(messages)),
@@ -3958,10 +3958,10 @@ fn secrets_never_reach_the_logs() {
                 }];
                 inputs.extend(frames);
                 let listed = client
-                    .list_models(pb::ListModelsRequest {})
+                    .list_model_cards(pb::ModelCardsRequest {})
                     .await
                     .map(|_| ());
-                let mut answers = match client.converse(tokio_stream::iter(inputs)).await {
+                let mut answers = match client.run_session(tokio_stream::iter(inputs)).await {
                     Ok(r) => r.into_inner(),
                     Err(status) => return (listed, Err(status.code()), 0),
                 };

@@ -71,16 +71,16 @@ fn noise_frame(rng: &mut Rng, w: u32, h: u32) -> Vec<u8> {
 }
 
 /// Opens a session, sends `inputs` (after the opening) and collects every output until the stream ends.
-async fn converse(
+async fn run_session(
     url: &str,
     opening: pb::SessionOpening,
     inputs: Vec<pb::SessionInput>,
 ) -> Result<Vec<pb::SessionOutput>, tonic::Status> {
-    converse_on(client(url).await, opening, inputs).await
+    run_session_on(client(url).await, opening, inputs).await
 }
 
-/// As [`converse`], on a connected client.
-async fn converse_on(
+/// As [`run_session`], on a connected client.
+async fn run_session_on(
     mut grpc: FrameAnalysisClient<Channel>,
     opening: pb::SessionOpening,
     inputs: Vec<pb::SessionInput>,
@@ -98,7 +98,10 @@ async fn converse_on(
             }
         }
     });
-    let mut answers = grpc.converse(ReceiverStream::new(rx)).await?.into_inner();
+    let mut answers = grpc
+        .run_session(ReceiverStream::new(rx))
+        .await?
+        .into_inner();
     let mut out = Vec::new();
     while let Some(m) = answers.message().await? {
         out.push(m);
@@ -123,7 +126,7 @@ async fn open_held(
     };
     tx.send(first).await.expect("queue");
     let mut answers = grpc
-        .converse(ReceiverStream::new(rx))
+        .run_session(ReceiverStream::new(rx))
         .await
         .expect("session opens")
         .into_inner();
@@ -168,7 +171,7 @@ async fn every_frame_answers_each_of_1000_frames_once_in_order_with_the_caution(
             )
         })
         .collect();
-    let outputs = converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
+    let outputs = run_session(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("session runs");
     let Some(pb::session_output::Item::Accepted(accepted)) = &outputs[0].item else {
@@ -274,7 +277,7 @@ async fn streamed_results_equal_the_offline_engine_bit_for_bit() {
             .iter()
             .map(|(s, t, f, d)| frame_msg(*s, *t, *f, w, h, d.clone()))
             .collect();
-        let outputs = converse(&t.url, opening.clone(), inputs)
+        let outputs = run_session(&t.url, opening.clone(), inputs)
             .await
             .expect("session runs");
         let model = demo_model();
@@ -365,13 +368,13 @@ async fn a_unix_socket_gives_the_answers_tcp_gives_and_guards_its_path() {
             )
         })
         .collect();
-    let over_tcp = converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs.clone())
+    let over_tcp = run_session(&t.url, opening(pb::FramePolicy::EveryFrame), inputs.clone())
         .await
         .expect("tcp session");
     let unix_client = framewise_cli::client::connect(&format!("unix:{}", path.display()))
         .await
         .expect("connects over the socket");
-    let over_unix = converse_on(unix_client, opening(pb::FramePolicy::EveryFrame), inputs)
+    let over_unix = run_session_on(unix_client, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("unix session");
     let (tcp, unix) = (results_of(&over_tcp), results_of(&over_unix));
@@ -459,7 +462,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         })
         .collect();
     let expected = results_of(
-        &converse_on(
+        &run_session_on(
             unix_client().await,
             opening(pb::FramePolicy::EveryFrame),
             inline,
@@ -468,7 +471,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         .expect("inline session"),
     );
     let read = results_of(
-        &converse_on(unix_client().await, with_file(file.name()), by_file)
+        &run_session_on(unix_client().await, with_file(file.name()), by_file)
             .await
             .expect("frame-file session"),
     );
@@ -515,7 +518,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         ),
         good.clone(),
     ];
-    let outputs = converse_on(unix_client().await, with_file(file.name()), bad)
+    let outputs = run_session_on(unix_client().await, with_file(file.name()), bad)
         .await
         .expect("session with bad slices");
     let got = answers(&outputs);
@@ -537,7 +540,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         "the session goes on"
     );
     // A slice in a session that named no frame file.
-    let outputs = converse_on(
+    let outputs = run_session_on(
         unix_client().await,
         opening(pb::FramePolicy::EveryFrame),
         vec![good.clone()],
@@ -559,7 +562,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         ("missing.frames", "no file"),
         ("link", "not a plain file"),
     ] {
-        let status = converse_on(unix_client().await, with_file(name), Vec::new())
+        let status = run_session_on(unix_client().await, with_file(name), Vec::new())
             .await
             .expect_err("refused");
         assert_eq!(status.code(), tonic::Code::InvalidArgument);
@@ -570,7 +573,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
         );
     }
     // Over TCP the same opening is refused: frame files are for the host's own processes.
-    let status = converse(&t.url, with_file(file.name()), Vec::new())
+    let status = run_session(&t.url, with_file(file.name()), Vec::new())
         .await
         .expect_err("refused over TCP");
     assert_eq!(status.code(), tonic::Code::InvalidArgument);
@@ -582,7 +585,7 @@ async fn frames_read_from_a_frame_file_give_the_answers_inline_frames_give() {
     t.server.stop().await.expect("stops");
     // A server without a shared frames directory reads no frame files.
     let plain = start(ServerConfig::default()).await;
-    let status = converse(&plain.url, with_file("x"), Vec::new())
+    let status = run_session(&plain.url, with_file("x"), Vec::new())
         .await
         .expect_err("refused");
     assert!(
@@ -630,7 +633,7 @@ async fn bad_frames_get_error_answers_and_the_session_goes_on() {
         },
         good(&mut rng, 6),
     ];
-    let outputs = converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
+    let outputs = run_session(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("session runs");
     let answers = answers(&outputs);
@@ -689,7 +692,7 @@ async fn latest_only_answers_every_frame_as_result_or_skipped() {
             )
         })
         .collect();
-    let outputs = converse(&t.url, opening(pb::FramePolicy::LatestOnly), inputs)
+    let outputs = run_session(&t.url, opening(pb::FramePolicy::LatestOnly), inputs)
         .await
         .expect("session runs");
     let answers = answers(&outputs);
@@ -758,7 +761,7 @@ async fn sixteen_concurrent_sessions_complete() {
                     )
                 })
                 .collect();
-            converse(&url, opening(pb::FramePolicy::EveryFrame), inputs).await
+            run_session(&url, opening(pb::FramePolicy::EveryFrame), inputs).await
         }));
     }
     for task in tasks {
@@ -777,7 +780,7 @@ async fn openings_are_checked_and_limits_hold() {
     .await;
     // A session that stays open holds the only place.
     let (tx, mut held) = open_held(&t.url).await;
-    let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
+    let err = run_session(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
         .await
         .expect_err("second session refused");
     assert_eq!(err.code(), tonic::Code::ResourceExhausted);
@@ -789,7 +792,7 @@ async fn openings_are_checked_and_limits_hold() {
         model: "no-such-model".into(),
         ..Default::default()
     };
-    let err = converse(&t.url, bad_model, vec![])
+    let err = run_session(&t.url, bad_model, vec![])
         .await
         .expect_err("unknown model");
     assert_eq!(err.code(), tonic::Code::NotFound);
@@ -803,7 +806,9 @@ async fn openings_are_checked_and_limits_hold() {
         }),
         ..Default::default()
     };
-    let err = converse(&t.url, bad_tau, vec![]).await.expect_err("tau 0");
+    let err = run_session(&t.url, bad_tau, vec![])
+        .await
+        .expect_err("tau 0");
     assert_eq!(err.code(), tonic::Code::InvalidArgument);
     assert!(
         err.message().contains("exponential.tau_ms"),
@@ -819,7 +824,7 @@ async fn openings_are_checked_and_limits_hold() {
         }),
         ..Default::default()
     };
-    let err = converse(&t.url, bad_enter, vec![])
+    let err = run_session(&t.url, bad_enter, vec![])
         .await
         .expect_err("enter above 1");
     assert_eq!(err.code(), tonic::Code::InvalidArgument);
@@ -839,30 +844,30 @@ async fn a_token_is_required_when_set() {
         ..Default::default()
     })
     .await;
-    let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
+    let err = run_session(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
         .await
         .expect_err("no token");
     assert_eq!(err.code(), tonic::Code::Unauthenticated);
     let mut grpc = client(&t.url).await;
-    let mut request = tonic::Request::new(pb::ListModelsRequest {});
+    let mut request = tonic::Request::new(pb::ModelCardsRequest {});
     request.metadata_mut().insert(
         "authorization",
         "Bearer wrong-token-of-some-length".parse().expect("header"),
     );
     assert_eq!(
-        grpc.list_models(request)
+        grpc.list_model_cards(request)
             .await
             .expect_err("wrong token")
             .code(),
         tonic::Code::Unauthenticated
     );
-    let mut request = tonic::Request::new(pb::ListModelsRequest {});
+    let mut request = tonic::Request::new(pb::ModelCardsRequest {});
     request.metadata_mut().insert(
         "authorization",
         format!("Bearer {token}").parse().expect("header"),
     );
     let reply = grpc
-        .list_models(request)
+        .list_model_cards(request)
         .await
         .expect("right token")
         .into_inner();
@@ -882,9 +887,10 @@ async fn a_token_is_required_when_set() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn python_clients_use_the_contract_and_the_health_protocol() {
-    // Reference clients: grpcio with stubs generated from our .proto by grpcio-tools, and the
-    // grpcio-health-checking package's standard health client.
+async fn python_clients_use_the_contract_the_health_protocol_and_reflection() {
+    // Reference clients: grpcio with stubs generated from our .proto by grpcio-tools, the
+    // grpcio-health-checking package's standard health client, and grpcio-reflection's descriptor database
+    // (server reflection v1alpha).
     let t = start(ServerConfig::default()).await;
     let script = framewise_tests::workspace_root().join("tests/reference/py_client.py");
     let output = tokio::process::Command::new(framewise_tests::python())
@@ -901,7 +907,72 @@ async fn python_clients_use_the_contract_and_the_health_protocol() {
         "python client failed:\n{stdout}\n{stderr}"
     );
     assert!(stdout.contains("health: SERVING"), "{stdout}");
+    assert!(stdout.contains("reflection: "), "{stdout}");
     assert!(stdout.contains("answers: 5"), "{stdout}");
+    t.server.stop().await.expect("stops");
+}
+
+/// Server reflection, v1 (v1alpha is exercised by the Python client above): the services listed, and the
+/// contract's file described with its rpcs, as general-purpose gRPC tools read them.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn reflection_lists_the_services_and_describes_the_contract() {
+    use tonic_reflection::pb::v1::ServerReflectionRequest;
+    use tonic_reflection::pb::v1::server_reflection_client::ServerReflectionClient;
+    use tonic_reflection::pb::v1::server_reflection_request::MessageRequest;
+    use tonic_reflection::pb::v1::server_reflection_response::MessageResponse;
+    let t = start(ServerConfig::default()).await;
+    let channel = Channel::from_shared(t.url.clone())
+        .expect("url")
+        .connect()
+        .await
+        .expect("connects");
+    let request = |m| ServerReflectionRequest {
+        host: String::new(),
+        message_request: Some(m),
+    };
+    let asks = tokio_stream::iter(vec![
+        request(MessageRequest::ListServices(String::new())),
+        request(MessageRequest::FileContainingSymbol(
+            "framewise.v1.FrameAnalysis".into(),
+        )),
+    ]);
+    let mut replies = ServerReflectionClient::new(channel)
+        .server_reflection_info(asks)
+        .await
+        .expect("reflection answers")
+        .into_inner();
+    let Some(MessageResponse::ListServicesResponse(list)) = replies
+        .message()
+        .await
+        .expect("a reply")
+        .and_then(|r| r.message_response)
+    else {
+        panic!("no service list")
+    };
+    let names: Vec<&str> = list.service.iter().map(|s| s.name.as_str()).collect();
+    for wanted in ["framewise.v1.FrameAnalysis", "grpc.health.v1.Health"] {
+        assert!(names.contains(&wanted), "{names:?}");
+    }
+    let Some(MessageResponse::FileDescriptorResponse(files)) = replies
+        .message()
+        .await
+        .expect("a reply")
+        .and_then(|r| r.message_response)
+    else {
+        panic!("no file descriptor")
+    };
+    let described = files.file_descriptor_proto.concat();
+    for rpc in [
+        "RunSession",
+        "ListModelCards",
+        "GetModelCard",
+        "ReadStatistics",
+    ] {
+        assert!(
+            described.windows(rpc.len()).any(|w| w == rpc.as_bytes()),
+            "{rpc} is not in the described file"
+        );
+    }
     t.server.stop().await.expect("stops");
 }
 
@@ -925,7 +996,7 @@ async fn the_metrics_endpoint_exposes_counters_and_latency_histograms() {
             )
         })
         .collect();
-    converse(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
+    run_session(&t.url, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("session runs");
     let addr = t.server.metrics_addr.expect("metrics address");
@@ -973,7 +1044,8 @@ async fn an_idle_session_is_ended_with_a_clear_status() {
         .message()
         .await
         .expect_err("ended by the idle timeout");
-    assert_eq!(err.code(), tonic::Code::DeadlineExceeded);
+    // Not DEADLINE_EXCEEDED, which is the caller's own deadline: the server cancelled the session.
+    assert_eq!(err.code(), tonic::Code::Cancelled);
     assert!(err.message().contains("idle timeout"), "{}", err.message());
     drop(tx);
     t.server.stop().await.expect("stops");
@@ -1022,7 +1094,7 @@ async fn shutdown_goes_not_serving_refuses_new_sessions_and_lets_open_ones_finis
         not_serving,
         "NOT_SERVING first"
     );
-    let err = converse(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
+    let err = run_session(&t.url, opening(pb::FramePolicy::EveryFrame), vec![])
         .await
         .expect_err("new session refused");
     assert_eq!(err.code(), tonic::Code::Unavailable);
@@ -1089,7 +1161,7 @@ async fn a_server_on_the_onnxruntime_engine_says_so_in_every_answer_and_matches_
             )
         })
         .collect();
-    let outputs = converse(&url, opening(pb::FramePolicy::EveryFrame), inputs)
+    let outputs = run_session(&url, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("session runs");
     let Some(pb::session_output::Item::Accepted(accepted)) = &outputs[0].item else {
@@ -1185,7 +1257,7 @@ async fn a_wake_latency_bound_is_held_while_the_server_runs_and_released_when_it
             )
         })
         .collect();
-    let outputs = converse(&url, opening(pb::FramePolicy::EveryFrame), inputs)
+    let outputs = run_session(&url, opening(pb::FramePolicy::EveryFrame), inputs)
         .await
         .expect("session runs");
     assert_eq!(answers(&outputs).len(), 3);

@@ -32,7 +32,7 @@ fn leaf(
     (cert.pem(), key.serialize_pem())
 }
 
-async fn list_models(
+async fn list_model_cards(
     port: u16,
     ca_pem: &str,
     identity: Option<&(String, String)>,
@@ -51,7 +51,7 @@ async fn list_models(
         .await
         .map_err(|e| format!("connect: {e}"))?;
     let reply = FrameAnalysisClient::new(channel)
-        .list_models(pb::ListModelsRequest {})
+        .list_model_cards(pb::ModelCardsRequest {})
         .await
         .map_err(|e| format!("call: {e}"))?;
     Ok(reply.into_inner().models.len())
@@ -89,16 +89,16 @@ async fn mutual_tls_admits_only_clients_of_the_configured_authority() {
     let port = server.addr.port();
 
     assert_eq!(
-        list_models(port, &ours.pem(), Some(&client)).await,
+        list_model_cards(port, &ours.pem(), Some(&client)).await,
         Ok(1),
         "a client of our authority gets in"
     );
     assert!(
-        list_models(port, &ours.pem(), None).await.is_err(),
+        list_model_cards(port, &ours.pem(), None).await.is_err(),
         "a client without a certificate is refused"
     );
     assert!(
-        list_models(port, &ours.pem(), Some(&stranger))
+        list_model_cards(port, &ours.pem(), Some(&stranger))
             .await
             .is_err(),
         "another authority's client is refused"
@@ -107,7 +107,7 @@ async fn mutual_tls_admits_only_clients_of_the_configured_authority() {
     let plain = FrameAnalysisClient::connect(format!("http://127.0.0.1:{port}")).await;
     let refused = match plain {
         Err(_) => true,
-        Ok(mut c) => c.list_models(pb::ListModelsRequest {}).await.is_err(),
+        Ok(mut c) => c.list_model_cards(pb::ModelCardsRequest {}).await.is_err(),
     };
     assert!(refused, "plaintext is refused on a TLS port");
     server.stop().await.expect("stops");

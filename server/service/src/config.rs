@@ -17,6 +17,10 @@ pub const DEFAULT_MAX_SESSIONS: usize = 64;
 pub const DEFAULT_IDLE_TIMEOUT_S: f64 = 30.0;
 /// Default drain deadline after SIGTERM.
 pub const DEFAULT_DRAIN_S: f64 = 10.0;
+/// Most worker threads (each holds a stack and a model's run state; more than this buys nothing on any CPU).
+pub const MAX_WORKERS: usize = 256;
+/// Longest idle timeout or drain deadline: one day.
+pub const MAX_SECONDS: f64 = 86_400.0;
 /// Answers buffered per session before the session stops reading frames (back-pressure on the client).
 pub const ANSWER_BUFFER: usize = 16;
 
@@ -205,6 +209,15 @@ impl ServerConfig {
                 );
             }
         }
+        if self.workers > MAX_WORKERS {
+            return bad(
+                "workers",
+                format!(
+                    "is {}; it must be from 0 (one per core) to {MAX_WORKERS}",
+                    self.workers
+                ),
+            );
+        }
         if self.inference_threads == 0 || self.inference_threads > 256 {
             return bad(
                 "inference_threads",
@@ -230,10 +243,12 @@ impl ServerConfig {
             ("idle_timeout_s", self.idle_timeout_s),
             ("drain_s", self.drain_s),
         ] {
-            if !(v.is_finite() && v > 0.0) {
+            if !(v.is_finite() && v > 0.0 && v <= MAX_SECONDS) {
                 return bad(
                     field,
-                    format!("is {v}; it must be a positive number of seconds"),
+                    format!(
+                        "is {v}; it must be a number of seconds above 0 and at most {MAX_SECONDS}"
+                    ),
                 );
             }
         }

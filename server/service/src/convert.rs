@@ -381,9 +381,9 @@ pub fn input_recipe(model: &Model) -> pb::InputRecipe {
 }
 
 /// A model's full description.
-pub fn description(model: &Model, is_default: bool) -> pb::ModelDescription {
+pub fn model_card(model: &Model, is_default: bool) -> pb::ModelCard {
     let m = model.manifest();
-    pb::ModelDescription {
+    pb::ModelCard {
         identity: Some(identity(model)),
         classes: m.classes.clone(),
         input: Some(input_recipe(model)),

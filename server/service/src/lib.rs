@@ -172,6 +172,17 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     let grpc = FrameAnalysisServer::new(service)
         .max_decoding_message_size(config.max_message_bytes)
         .max_encoding_message_size(config.max_message_bytes);
+    // Reflection, so that general-purpose gRPC tools can list and call the service: both protocol versions,
+    // with the contract's and the health service's descriptors.
+    let reflection = || {
+        tonic_reflection::server::Builder::configure()
+            .register_encoded_file_descriptor_set(framewise_proto::v1::FILE_DESCRIPTOR_SET)
+            .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+    };
+    let reflection_v1 = reflection().build_v1().context("the reflection service")?;
+    let reflection_v1alpha = reflection()
+        .build_v1alpha()
+        .context("the reflection service")?;
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_serving::<FrameAnalysisServer<Service>>().await;
     health
@@ -200,12 +211,16 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
     let incoming = tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true));
     let tcp = builder
         .add_service(health_service.clone())
+        .add_service(reflection_v1.clone())
+        .add_service(reflection_v1alpha.clone())
         .add_service(grpc.clone())
         .serve_with_incoming_shutdown(incoming, stopped(&transport_stop));
     // The same services on the Unix socket, without TLS (the socket file's permissions decide who connects).
     let unix = unix_listener.map(|l| {
         transport()
             .add_service(health_service)
+            .add_service(reflection_v1)
+            .add_service(reflection_v1alpha)
             .add_service(grpc)
             .serve_with_incoming_shutdown(
                 tokio_stream::wrappers::UnixListenerStream::new(l),

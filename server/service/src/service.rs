@@ -155,12 +155,12 @@ impl Drop for OpenSession {
 
 #[tonic::async_trait]
 impl FrameAnalysis for Service {
-    type ConverseStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
+    type RunSessionStream = ReceiverStream<Result<pb::SessionOutput, Status>>;
 
-    async fn converse(
+    async fn run_session(
         &self,
         request: Request<Streaming<pb::SessionInput>>,
-    ) -> Result<Response<Self::ConverseStream>, Status> {
+    ) -> Result<Response<Self::RunSessionStream>, Status> {
         self.authorise(&request).map_err(|s| self.refuse(s))?;
         if self.draining.load(Ordering::Relaxed) {
             return Err(self.refuse(Status::unavailable(
@@ -181,8 +181,8 @@ impl FrameAnalysis for Service {
         let first = tokio::time::timeout(self.idle_timeout, inbound.message())
             .await
             .map_err(|_| {
-                self.refuse(Status::deadline_exceeded(
-                    "no SessionOpening arrived within the idle timeout",
+                self.refuse(Status::cancelled(
+                    "no SessionOpening arrived within the idle timeout; the session was ended by the server",
                 ))
             })?
             .map_err(|s| self.refuse(s))?;
@@ -262,28 +262,28 @@ impl FrameAnalysis for Service {
         Ok(Response::new(ReceiverStream::new(answers)))
     }
 
-    async fn list_models(
+    async fn list_model_cards(
         &self,
-        request: Request<pb::ListModelsRequest>,
-    ) -> Result<Response<pb::ListModelsReply>, Status> {
+        request: Request<pb::ModelCardsRequest>,
+    ) -> Result<Response<pb::ModelCards>, Status> {
         self.authorise(&request)?;
         let models = self
             .registry
             .all()
             .iter()
             .enumerate()
-            .map(|(i, m)| convert::description(m, i == 0))
+            .map(|(i, m)| convert::model_card(m, i == 0))
             .collect();
-        Ok(Response::new(pb::ListModelsReply {
+        Ok(Response::new(pb::ModelCards {
             models,
             caution: CAUTION.into(),
         }))
     }
 
-    async fn describe_model(
+    async fn get_model_card(
         &self,
-        request: Request<pb::DescribeModelRequest>,
-    ) -> Result<Response<pb::ModelDescription>, Status> {
+        request: Request<pb::ModelCardRequest>,
+    ) -> Result<Response<pb::ModelCard>, Status> {
         self.authorise(&request)?;
         let name = &request.get_ref().name;
         let model = self
@@ -291,7 +291,7 @@ impl FrameAnalysis for Service {
             .get(name)
             .ok_or_else(|| Status::not_found(format!("no model named `{name}`")))?;
         let is_default = self.registry.get("").is_some_and(|d| Arc::ptr_eq(d, model));
-        Ok(Response::new(convert::description(model, is_default)))
+        Ok(Response::new(convert::model_card(model, is_default)))
     }
 
     async fn read_statistics(

@@ -330,8 +330,9 @@ async fn next_frame(
     };
     let message = match message {
         Err(_) => {
-            return Err(Status::deadline_exceeded(format!(
-                "no message for {:.0} s (idle timeout); the session was ended",
+            // The server's own limit, not the caller's deadline: the session is cancelled by the server.
+            return Err(Status::cancelled(format!(
+                "no message for {:.0} s (idle timeout); the session was ended by the server",
                 ctx.idle_timeout.as_secs_f64()
             )));
         }
@@ -374,8 +375,8 @@ async fn deliver(
         sent = tokio::time::timeout(ctx.idle_timeout, outbox.send(Ok(message))) => match sent {
             Ok(Ok(())) => Ok(()),
             Ok(Err(_)) => Err(Undelivered::Gone),
-            Err(_) => Err(Undelivered::Stuck(Status::deadline_exceeded(format!(
-                "the client read no answer for {:.0} s (idle timeout); the session was ended",
+            Err(_) => Err(Undelivered::Stuck(Status::cancelled(format!(
+                "the client read no answer for {:.0} s (idle timeout); the session was ended by the server",
                 ctx.idle_timeout.as_secs_f64()
             )))),
         },
