@@ -35,6 +35,8 @@ pub struct BenchArgs {
     /// Bearer token.
     #[arg(long, env = "FRAMEWISE_TOKEN", hide_env_values = true)]
     pub token: Option<String>,
+    #[command(flatten)]
+    pub connect: client::ConnectFlags,
     /// Concurrent sessions.
     #[arg(long, default_value_t = 4)]
     pub sessions: usize,
@@ -258,11 +260,12 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         if let Ok(mut sh) = shared.lock() {
             sh.shares[server].sessions.push(s);
         }
-        let (frames, shared, opening, token) = (
+        let (frames, shared, opening, token, connect) = (
             frames.clone(),
             shared.clone(),
             opening.clone(),
             args.token.clone(),
+            args.connect.clone(),
         );
         let (width, height, late_us) = (args.width, args.height, (args.late_ms * 1000.0) as u64);
         // Sessions are staggered across one frame interval so that they do not all send at once.
@@ -270,6 +273,7 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
         tasks.push(tokio::spawn(async move {
             let outcome = one_session(
                 &url,
+                &connect,
                 s,
                 server,
                 token.as_deref(),
@@ -381,6 +385,7 @@ pub async fn run(mut args: BenchArgs) -> Result<(BenchReport, bool)> {
 #[allow(clippy::too_many_arguments)]
 async fn one_session(
     url: &str,
+    connect: &client::ConnectFlags,
     session_index: usize,
     server: usize,
     token: Option<&str>,
@@ -395,7 +400,7 @@ async fn one_session(
     late_us: u64,
     shared: &Arc<Mutex<Shared>>,
 ) -> Result<()> {
-    let mut grpc = client::connect(url).await?;
+    let mut grpc = client::connect_with(url, connect).await?;
     let session = client::open(&mut grpc, opening, token).await?;
     if let Ok(mut sh) = shared.lock()
         && sh.model.is_none()

@@ -13,9 +13,168 @@ pub const SEND_BUFFER: usize = 4;
 /// Largest message the client sends or accepts: a 4K UHD RGBA frame plus headroom (matches the server's default).
 pub const MAX_MESSAGE_BYTES: usize = 36 * 1024 * 1024;
 
+/// How the client reaches a server: TLS material, connect timeout and keepalive (flags of every command that
+/// connects).
+#[derive(Debug, Clone, clap::Args)]
+pub struct ConnectFlags {
+    /// PEM file of the authority that signed the server's certificate, for `https://` servers with a private
+    /// authority (the system's authorities are trusted as well).
+    #[arg(long, env = "FRAMEWISE_TLS_CA")]
+    pub tls_ca: Option<std::path::PathBuf>,
+    /// PEM file of this client's certificate, for servers that ask for one (mutual TLS); needs --tls-key.
+    #[arg(long, env = "FRAMEWISE_TLS_CERT", requires = "tls_key")]
+    pub tls_cert: Option<std::path::PathBuf>,
+    /// PEM file of this client's private key; needs --tls-cert.
+    #[arg(
+        long,
+        env = "FRAMEWISE_TLS_KEY",
+        requires = "tls_cert",
+        hide_env_values = true
+    )]
+    pub tls_key: Option<std::path::PathBuf>,
+    /// Seconds to wait for the connection before giving up.
+    #[arg(long, default_value_t = 5.0)]
+    pub connect_timeout_s: f64,
+    /// Seconds between HTTP/2 keepalive pings on an idle connection (and the TCP keepalive interval); 0 for
+    /// none. A ping not answered within as long again ends the connection, so a server that vanished is
+    /// noticed.
+    #[arg(long, default_value_t = 20.0)]
+    pub keepalive_s: f64,
+}
+
+impl Default for ConnectFlags {
+    fn default() -> Self {
+        Self {
+            tls_ca: None,
+            tls_cert: None,
+            tls_key: None,
+            connect_timeout_s: 5.0,
+            keepalive_s: 20.0,
+        }
+    }
+}
+
+/// Longest connect timeout or keepalive interval accepted: an hour.
+const MAX_CONNECT_SECONDS: f64 = 3600.0;
+
+impl ConnectFlags {
+    fn seconds(value: f64, flag: &str, zero_ok: bool) -> Result<Option<std::time::Duration>> {
+        let ok = value.is_finite()
+            && value <= MAX_CONNECT_SECONDS
+            && (value > 0.0 || (zero_ok && value == 0.0));
+        anyhow::ensure!(
+            ok,
+            "{flag} {value}: give a number of seconds {} and at most {MAX_CONNECT_SECONDS}",
+            if zero_ok { "from 0" } else { "above 0" }
+        );
+        Ok((value > 0.0).then(|| std::time::Duration::from_secs_f64(value)))
+    }
+
+    /// The endpoint for `url` with these settings.
+    fn endpoint(&self, url: &str) -> Result<Endpoint> {
+        let connect = Self::seconds(self.connect_timeout_s, "--connect-timeout-s", false)?;
+        let keepalive = Self::seconds(self.keepalive_s, "--keepalive-s", true)?;
+        let mut endpoint = Endpoint::from_shared(url.to_string())
+            .with_context(|| format!("`{url}` is not a server URL (write http://HOST:PORT, https://HOST:PORT or unix:PATH)"))?
+            .tcp_nodelay(true);
+        if let Some(t) = connect {
+            endpoint = endpoint.connect_timeout(t);
+        }
+        if let Some(k) = keepalive {
+            endpoint = endpoint
+                .http2_keep_alive_interval(k)
+                .keep_alive_timeout(k)
+                .keep_alive_while_idle(true)
+                .tcp_keepalive(Some(k));
+        }
+        if url.starts_with("https://") {
+            let mut tls = tonic::transport::ClientTlsConfig::new().with_native_roots();
+            if let Some(ca) = &self.tls_ca {
+                let pem = std::fs::read(ca)
+                    .with_context(|| format!("reading --tls-ca {}", ca.display()))?;
+                tls = tls.ca_certificate(tonic::transport::Certificate::from_pem(pem));
+            }
+            if let (Some(cert), Some(key)) = (&self.tls_cert, &self.tls_key) {
+                let cert = std::fs::read(cert)
+                    .with_context(|| format!("reading --tls-cert {}", cert.display()))?;
+                let key = std::fs::read(key)
+                    .with_context(|| format!("reading --tls-key {}", key.display()))?;
+                tls = tls.identity(tonic::transport::Identity::from_pem(cert, key));
+            }
+            endpoint = endpoint
+                .tls_config(tls)
+                .with_context(|| format!("the TLS settings for {url}"))?;
+        } else if self.tls_ca.is_some() || self.tls_cert.is_some() {
+            bail!(
+                "`{url}` is not an https:// URL, but TLS files were given: write https://{}",
+                url.trim_start_matches("http://")
+            );
+        }
+        Ok(endpoint)
+    }
+}
+
+/// An error and its chain of causes, each once.
+fn causes(error: &dyn std::error::Error) -> String {
+    let mut chain = vec![error.to_string()];
+    let mut source = error.source();
+    while let Some(cause) = source {
+        chain.push(cause.to_string());
+        source = cause.source();
+    }
+    chain.dedup();
+    chain.join(": ")
+}
+
+/// What to do about the usual connection failures, from their causes' text.
+fn hint(causes: &str) -> &'static str {
+    let lower = causes.to_lowercase();
+    if lower.contains("refused") {
+        "nothing listens there: is the server running, on this address and port?"
+    } else if lower.contains("timed out") || lower.contains("elapsed") {
+        "no answer in time: check the address, a firewall, or --connect-timeout-s"
+    } else if lower.contains("dns") || lower.contains("resolve") || lower.contains("lookup") {
+        "the host name does not resolve: check it"
+    } else if lower.contains("unknownissuer")
+        || lower.contains("invalid peer certificate")
+        || lower.contains("certificate")
+    {
+        "the server's certificate is not trusted: give its authority with --tls-ca (or FRAMEWISE_TLS_CA); \
+         a server that asks for a client certificate needs --tls-cert and --tls-key"
+    } else if lower.contains("corrupt message")
+        || lower.contains("invalidcontenttype")
+        || lower.contains("record")
+    {
+        "the server does not speak TLS there: try http:// instead of https://"
+    } else if lower.contains("frame") || lower.contains("http2") || lower.contains("h2") {
+        "the server does not speak plaintext HTTP/2 there: if it uses TLS, write https://"
+    } else {
+        "check the address and whether the server uses TLS (https://) or not (http://)"
+    }
+}
+
+/// Why a connection failed, in words a person can act on: the error's whole chain of causes, and a hint for
+/// the usual ones.
+fn explain_connect_error(url: &str, error: &dyn std::error::Error) -> String {
+    let text = causes(error);
+    format!("connecting to {url}: {text} ({})", hint(&text))
+}
+
 /// Connects to a server: `http://host:port`, or `unix:PATH` for a server's Unix-domain socket on this host
 /// (`listen_unix`), which moves large frames faster than TCP loopback (BENCHMARKS.md, section 3).
 pub async fn connect(url: &str) -> Result<FrameAnalysisClient<Channel>> {
+    connect_with(url, &ConnectFlags::default()).await
+}
+
+/// As [`connect`], with TLS material, timeouts and keepalive from `flags`. A URL without a scheme is refused
+/// with the one to write.
+pub async fn connect_with(url: &str, flags: &ConnectFlags) -> Result<FrameAnalysisClient<Channel>> {
+    let known = ["http://", "https://", "unix:"];
+    if !known.iter().any(|s| url.starts_with(s)) {
+        bail!(
+            "`{url}` has no scheme: write http://{url} (https://{url} for a server with TLS, unix:PATH for its socket)"
+        );
+    }
     let channel = match unix_socket_path(url) {
         Some(path) => {
             // The URI is required by the transport but unused: the connector below opens the socket.
@@ -29,14 +188,9 @@ pub async fn connect(url: &str) -> Result<FrameAnalysisClient<Channel>> {
             });
             endpoint.connect_with_connector(connector).await
         }
-        None => {
-            let endpoint = Endpoint::from_shared(url.to_string())
-                .with_context(|| format!("`{url}` is not a server URL"))?
-                .tcp_nodelay(true);
-            windows(endpoint).connect().await
-        }
+        None => windows(flags.endpoint(url)?).connect().await,
     }
-    .map_err(|e| ServerFailure(format!("connecting to {url}: {e}")))?;
+    .map_err(|e| ServerFailure(explain_connect_error(url, &e)))?;
     Ok(FrameAnalysisClient::new(channel)
         .max_decoding_message_size(MAX_MESSAGE_BYTES)
         .max_encoding_message_size(MAX_MESSAGE_BYTES))
@@ -208,11 +362,20 @@ pub fn is_server_failure(e: &anyhow::Error) -> bool {
 /// A gRPC status as an error a person can act on; statuses that say the server or the connection failed
 /// (rather than that the request was wrong) are marked as [`ServerFailure`].
 pub fn status_error(status: tonic::Status) -> anyhow::Error {
-    let failed = format!(
-        "the server failed or the connection to it broke ({:?}: {})",
-        status.code(),
-        status.message()
-    );
+    // A transport failure surfaces as a status whose message is only "transport error": its causes say what.
+    let failed = if std::error::Error::source(&status).is_some() {
+        let text = causes(&status);
+        format!(
+            "the connection to the server failed: {text} ({})",
+            hint(&text)
+        )
+    } else {
+        format!(
+            "the server failed or the connection to it broke ({:?}: {})",
+            status.code(),
+            status.message()
+        )
+    };
     let text = format!("server answered {:?}: {}", status.code(), status.message());
     match status.code() {
         tonic::Code::Unavailable

@@ -244,6 +244,7 @@ pub async fn run(mut args: DemoArgs) -> Result<()> {
         &Target::Server {
             url: url.clone(),
             token: None,
+            connect: Default::default(),
         },
         &args.session,
         pacing,

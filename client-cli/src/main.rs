@@ -16,7 +16,7 @@ use framewise_cli::{bench, client, demo, models, plot, recording, replay, score,
 /// Decision support only, not a diagnosis: outputs are probabilities that can be wrong and must be confirmed by a
 /// qualified clinician; check local regulations before any clinical use.
 #[derive(Parser)]
-#[command(version, propagate_version = true)]
+#[command(name = "framewise", version, propagate_version = true)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -54,6 +54,8 @@ struct ServerFlags {
     /// Bearer token for the server.
     #[arg(long, env = "FRAMEWISE_TOKEN", hide_env_values = true)]
     token: Option<String>,
+    #[command(flatten)]
+    connect: client::ConnectFlags,
 }
 
 #[derive(clap::Args)]
@@ -166,7 +168,13 @@ async fn run(cli: Cli) -> Result<()> {
         }
         Command::Models(args) => {
             let server = args.server.servers.first().map_or("", String::as_str);
-            models::run(server, args.server.token.as_deref(), args.json).await
+            models::run(
+                server,
+                args.server.token.as_deref(),
+                &args.server.connect,
+                args.json,
+            )
+            .await
         }
     }
 }
@@ -194,6 +202,7 @@ async fn replay_command(args: ReplayArgs) -> Result<()> {
             .map(|url| replay::Target::Server {
                 url,
                 token: args.server.token.clone(),
+                connect: args.server.connect.clone(),
             })
             .collect()
     };

@@ -7,8 +7,13 @@ use crate::client;
 use crate::output::{SelfTestInfo, caution_line, table};
 
 /// Lists the models, as a table or as JSON lines.
-pub async fn run(url: &str, token: Option<&str>, json: bool) -> Result<()> {
-    let mut grpc = client::connect(url).await?;
+pub async fn run(
+    url: &str,
+    token: Option<&str>,
+    connect: &client::ConnectFlags,
+    json: bool,
+) -> Result<()> {
+    let mut grpc = client::connect_with(url, connect).await?;
     let reply = grpc
         .list_model_cards(client::with_token(pb::ModelCardsRequest {}, token)?)
         .await

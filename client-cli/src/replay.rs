@@ -99,8 +99,12 @@ impl Pacer {
 /// Where the engine runs.
 #[derive(Debug, Clone)]
 pub enum Target {
-    /// A server at this URL, with an optional token.
-    Server { url: String, token: Option<String> },
+    /// A server at this URL, with an optional token and how to reach it.
+    Server {
+        url: String,
+        token: Option<String>,
+        connect: crate::client::ConnectFlags,
+    },
     /// In this process, with this model package (or the embedded demo model).
     Offline {
         model: Option<PathBuf>,
@@ -368,8 +372,12 @@ pub async fn replay(
                 emit(record, &mut tally, &mut writer)?;
             }
         }
-        Target::Server { url, token } => {
-            let mut grpc = client::connect(url).await?;
+        Target::Server {
+            url,
+            token,
+            connect,
+        } => {
+            let mut grpc = client::connect_with(url, connect).await?;
             let session = client::open(&mut grpc, opening.clone(), token.as_deref()).await?;
             let accepted = session.accepted.clone();
             let header = Header {

@@ -136,3 +136,17 @@ fn y4m_reading_matches_the_planes_numpy_wrote() {
         rec.warnings
     );
 }
+
+/// The command names itself as users type it.
+#[test]
+fn the_version_line_names_the_command() {
+    let out = std::process::Command::new(framewise_tests::binary("framewise"))
+        .arg("--version")
+        .output()
+        .expect("framewise runs");
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success() && text.starts_with("framewise "),
+        "{text}"
+    );
+}

@@ -74,7 +74,11 @@ async fn replay_through_the_server_equals_offline_and_resumes_without_duplicates
     let source = synthetic_recording(&dir.join("rec"), 3.0);
     let server = start_server().await;
     let url = format!("http://{}", server.addr);
-    let target = Target::Server { url, token: None };
+    let target = Target::Server {
+        url,
+        token: None,
+        connect: Default::default(),
+    };
     let full = dir.join("full.jsonl");
     let tally = replay::replay(
         source.clone(),
@@ -204,6 +208,7 @@ async fn bench_writes_a_valid_report_and_gates() {
     let args = framewise_cli::bench::BenchArgs {
         servers: vec![format!("http://{}", server.addr)],
         token: None,
+        connect: Default::default(),
         sessions: 2,
         fps: 10.0,
         seconds: 2.0,

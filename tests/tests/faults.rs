@@ -1695,14 +1695,11 @@ fn out_of_range_start_up_flags_are_refused_with_their_range() {
         ("--workers", "99999", "workers"),
         ("--idle-timeout-s", "1e20", "idle_timeout_s"),
         ("--drain-s", "1e20", "drain_s"),
+        ("--keepalive-s=-1", "", "keepalive_s"),
     ] {
         let out = Command::new(binary("framewise-server"))
-            .args([
-                "--listen",
-                &format!("127.0.0.1:{}", free_port()),
-                flag,
-                value,
-            ])
+            .args(["--listen", &format!("127.0.0.1:{}", free_port()), flag])
+            .args((!value.is_empty()).then_some(value))
             .output()
             .expect("the server binary runs");
         let stderr = String::from_utf8_lossy(&out.stderr);
@@ -1712,4 +1709,34 @@ fn out_of_range_start_up_flags_are_refused_with_their_range() {
             "{flag} {value}: {stderr}"
         );
     }
+}
+
+/// `--listen` takes a host name (resolved, IPv4 first), and names the value it cannot use.
+#[test]
+fn listen_takes_host_names_and_names_what_it_cannot_resolve() {
+    // Parsed and resolved: the server gets as far as checking its other settings.
+    let out = Command::new(binary("framewise-server"))
+        .args([
+            "--listen",
+            &format!("localhost:{}", free_port()),
+            "--workers",
+            "99999",
+        ])
+        .output()
+        .expect("the server binary runs");
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains("workers") && !stderr.contains("HOST:PORT"),
+        "{stderr}"
+    );
+    let out = Command::new(binary("framewise-server"))
+        .args(["--listen", "no-such-host.invalid:1"])
+        .output()
+        .expect("the server binary runs");
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{stderr}");
+    assert!(
+        stderr.contains("no-such-host.invalid:1") && stderr.contains("HOST:PORT"),
+        "{stderr}"
+    );
 }

@@ -128,3 +128,117 @@ fn plaintext_on_a_non_loopback_address_is_refused_unless_allowed() {
     };
     assert!(allowed.validate().is_ok());
 }
+
+/// The `framewise` command against servers with TLS and mutual TLS: `--tls-ca` names the authority,
+/// `--tls-cert` and `--tls-key` the client's certificate; a missing authority or certificate is refused with
+/// what to give, and the usual connection mistakes (no scheme, nothing listening, https to plaintext) say
+/// what happened.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_command_line_client_speaks_tls_and_mutual_tls_and_explains_failures() {
+    let dir = framewise_tests::workspace_root()
+        .join("target/test-scratch")
+        .join(format!("tls-cli-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).expect("scratch");
+    let ours = authority("framewise test authority");
+    let (server_cert, server_key) = leaf(&ours, "127.0.0.1", ExtendedKeyUsagePurpose::ServerAuth);
+    let (client_cert, client_key) = leaf(&ours, "device-1", ExtendedKeyUsagePurpose::ClientAuth);
+    let write = |name: &str, text: &str| {
+        let path = dir.join(name);
+        std::fs::write(&path, text).expect("write");
+        path
+    };
+    let ca = write("ca.pem", &ours.pem());
+    let (cert, key) = (
+        write("client.pem", &client_cert),
+        write("client.key", &client_key),
+    );
+    let start = |client_ca: Option<std::path::PathBuf>| {
+        let tls = TlsConfig {
+            cert: write("server.pem", &server_cert),
+            key: write("server.key", &server_key),
+            client_ca,
+        };
+        let config = ServerConfig {
+            listen: "127.0.0.1:0".parse().expect("addr"),
+            tls: Some(tls),
+            ..Default::default()
+        };
+        framewise_server::start(config, Some(ModelRegistry::new(vec![demo_model()])))
+    };
+    // `framewise models` itself, in this process (the function the binary calls): the server runs on this
+    // runtime, so the command is not spawned as a child here.
+    let models = |url: String,
+                  ca: Option<&std::path::Path>,
+                  identity: Option<(&std::path::Path, &std::path::Path)>| {
+        let flags = framewise_cli::client::ConnectFlags {
+            tls_ca: ca.map(|p| p.to_path_buf()),
+            tls_cert: identity.map(|(c, _)| c.to_path_buf()),
+            tls_key: identity.map(|(_, k)| k.to_path_buf()),
+            ..Default::default()
+        };
+        async move {
+            framewise_cli::models::run(&url, None, &flags, true)
+                .await
+                .map_err(|e| format!("{e:#}"))
+        }
+    };
+    // The usual mistakes, through the binary (they need no server).
+    let binary = |url: String, flags: Vec<String>| {
+        let out = std::process::Command::new(framewise_tests::binary("framewise"))
+            .args(["models", "--server", &url])
+            .args(flags)
+            .output()
+            .expect("framewise runs");
+        (
+            out.status.success(),
+            String::from_utf8_lossy(&out.stderr).to_string(),
+        )
+    };
+
+    // TLS: the authority is needed, and enough.
+    let server = start(None).await.expect("starts");
+    let url = format!("https://127.0.0.1:{}", server.addr.port());
+    assert_eq!(models(url.clone(), Some(&ca), None).await, Ok(()));
+    let text = models(url.clone(), None, None)
+        .await
+        .expect_err("no authority");
+    assert!(text.contains("--tls-ca"), "without the authority: {text}");
+    // Plaintext to the TLS port says what happened.
+    let plain = format!("http://127.0.0.1:{}", server.addr.port());
+    let text = models(plain, None, None).await.expect_err("plaintext");
+    assert!(
+        text.contains("connection") && text.contains("https://"),
+        "{text}"
+    );
+    server.stop().await.expect("stops");
+
+    // Mutual TLS: the client's certificate is needed too.
+    let server = start(Some(ca.clone())).await.expect("starts");
+    let url = format!("https://127.0.0.1:{}", server.addr.port());
+    assert_eq!(
+        models(url.clone(), Some(&ca), Some((&cert, &key))).await,
+        Ok(())
+    );
+    assert!(
+        models(url, Some(&ca), None).await.is_err(),
+        "no client certificate"
+    );
+    server.stop().await.expect("stops");
+
+    let (ok, text) = binary("127.0.0.1:50051".into(), vec![]);
+    assert!(
+        !ok && text.contains("has no scheme") && text.contains("http://127.0.0.1:50051"),
+        "{text}"
+    );
+    let (ok, text) = binary(
+        format!("http://127.0.0.1:{}", framewise_tests::free_port()),
+        vec![],
+    );
+    assert!(!ok && text.contains("nothing listens there"), "{text}");
+    let (ok, text) = binary(
+        format!("http://127.0.0.1:{}", framewise_tests::free_port()),
+        vec!["--tls-ca".into(), ca.display().to_string()],
+    );
+    assert!(!ok && text.contains("not an https:// URL"), "{text}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -13,6 +13,8 @@ pub const DEFAULT_LISTEN: &str = "127.0.0.1:50051";
 pub const DEFAULT_MAX_MESSAGE_BYTES: usize = 36 * 1024 * 1024;
 /// Default largest number of open sessions.
 pub const DEFAULT_MAX_SESSIONS: usize = 64;
+/// Default keepalive interval of the server's connections.
+pub const DEFAULT_KEEPALIVE_S: f64 = 20.0;
 /// Default idle timeout: a session that sends nothing for this long is ended.
 pub const DEFAULT_IDLE_TIMEOUT_S: f64 = 30.0;
 /// Default drain deadline after SIGTERM.
@@ -75,6 +77,10 @@ pub struct ServerConfig {
     pub max_sessions: usize,
     /// Seconds without a message before a session is ended.
     pub idle_timeout_s: f64,
+    /// Seconds between HTTP/2 keepalive pings on a connection (and the TCP keepalive interval); a ping not
+    /// answered within as long again closes the connection, so a client that vanished frees its sessions
+    /// without waiting for the idle timeout. 0 for none.
+    pub keepalive_s: f64,
     /// Seconds open sessions get to finish after SIGTERM.
     pub drain_s: f64,
     /// TLS settings; none for plaintext.
@@ -142,6 +148,7 @@ impl Default for ServerConfig {
             max_frame_height: framewise_engine::frame::DEFAULT_FRAME_LIMITS.max_height,
             max_sessions: DEFAULT_MAX_SESSIONS,
             idle_timeout_s: DEFAULT_IDLE_TIMEOUT_S,
+            keepalive_s: DEFAULT_KEEPALIVE_S,
             drain_s: DEFAULT_DRAIN_S,
             tls: None,
             token: None,
@@ -252,6 +259,15 @@ impl ServerConfig {
                 );
             }
         }
+        if !(self.keepalive_s.is_finite() && (0.0..=MAX_SECONDS).contains(&self.keepalive_s)) {
+            return bad(
+                "keepalive_s",
+                format!(
+                    "is {}; it must be 0 (none) or a number of seconds up to {MAX_SECONDS}",
+                    self.keepalive_s
+                ),
+            );
+        }
         if let Some(token) = &self.token
             && token.len() < 16
         {
@@ -301,6 +317,11 @@ impl ServerConfig {
     /// Idle timeout.
     pub fn idle_timeout(&self) -> Duration {
         Duration::from_secs_f64(self.idle_timeout_s)
+    }
+
+    /// Keepalive interval, none for 0.
+    pub fn keepalive(&self) -> Option<Duration> {
+        (self.keepalive_s > 0.0).then(|| Duration::from_secs_f64(self.keepalive_s))
     }
 
     /// Drain deadline.

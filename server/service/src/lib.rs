@@ -189,7 +189,14 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
         .set_service_status("", tonic_health::ServingStatus::Serving)
         .await;
 
-    let mut builder = transport();
+    let keepalive = config.keepalive();
+    let with_keepalive = |server: tonic::transport::Server| {
+        server
+            .http2_keepalive_interval(keepalive)
+            .http2_keepalive_timeout(keepalive)
+            .tcp_keepalive(keepalive)
+    };
+    let mut builder = with_keepalive(transport());
     if let Some(tls) = &config.tls {
         let cert =
             std::fs::read(&tls.cert).with_context(|| format!("reading {}", tls.cert.display()))?;
@@ -217,7 +224,7 @@ pub async fn start(config: ServerConfig, registry: Option<ModelRegistry>) -> Res
         .serve_with_incoming_shutdown(incoming, stopped(&transport_stop));
     // The same services on the Unix socket, without TLS (the socket file's permissions decide who connects).
     let unix = unix_listener.map(|l| {
-        transport()
+        with_keepalive(transport())
             .add_service(health_service)
             .add_service(reflection_v1)
             .add_service(reflection_v1alpha)

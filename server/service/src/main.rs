@@ -20,8 +20,9 @@ struct Args {
     /// TOML config file.
     #[arg(long, env = "FRAMEWISE_CONFIG")]
     config: Option<PathBuf>,
-    /// gRPC address.
-    #[arg(long)]
+    /// gRPC address, HOST:PORT (an address or a host name, for instance 127.0.0.1:50051 or localhost:50051)
+    /// [default: 127.0.0.1:50051].
+    #[arg(long, value_parser = host_port)]
     listen: Option<SocketAddr>,
     /// Also serve on a Unix-domain socket at this path (clients on the same host: `--server unix:PATH`).
     #[arg(long)]
@@ -29,8 +30,8 @@ struct Args {
     /// Directory where clients on the Unix socket may place frame files (best on /dev/shm).
     #[arg(long)]
     shared_frames_dir: Option<PathBuf>,
-    /// Prometheus text endpoint address (for instance 127.0.0.1:9464).
-    #[arg(long)]
+    /// Prometheus text endpoint address, HOST:PORT (for instance 127.0.0.1:9464) [default: none].
+    #[arg(long, value_parser = host_port)]
     metrics_listen: Option<SocketAddr>,
     /// Model package directory to serve (repeatable).
     #[arg(long = "model")]
@@ -74,6 +75,9 @@ struct Args {
     /// Seconds open sessions get to finish after SIGTERM.
     #[arg(long)]
     drain_s: Option<f64>,
+    /// Seconds between HTTP/2 and TCP keepalive probes on a connection; 0 for none [default: 20].
+    #[arg(long)]
+    keepalive_s: Option<f64>,
     /// TLS certificate chain (PEM).
     #[arg(long, requires = "tls_key")]
     tls_cert: Option<PathBuf>,
@@ -101,6 +105,28 @@ fn main() {
         eprintln!("framewise-server: {err:#}");
         std::process::exit(1);
     }
+}
+
+/// A listening address from HOST:PORT, the host an address or a name (its first IPv4 address, else its first).
+fn host_port(text: &str) -> Result<SocketAddr, String> {
+    use std::net::ToSocketAddrs;
+    if let Ok(addr) = text.parse() {
+        return Ok(addr);
+    }
+    let addrs: Vec<SocketAddr> = text
+        .to_socket_addrs()
+        .map_err(|e| {
+            format!(
+                "`{text}` is not HOST:PORT (for instance 127.0.0.1:50051 or localhost:50051): {e}"
+            )
+        })?
+        .collect();
+    addrs
+        .iter()
+        .find(|a| a.is_ipv4())
+        .or(addrs.first())
+        .copied()
+        .ok_or_else(|| format!("`{text}` resolves to no address"))
 }
 
 fn config_from(args: Args) -> Result<ServerConfig> {
@@ -156,6 +182,9 @@ fn config_from(args: Args) -> Result<ServerConfig> {
     }
     if let Some(v) = args.max_message_bytes {
         config.max_message_bytes = v;
+    }
+    if let Some(v) = args.keepalive_s {
+        config.keepalive_s = v;
     }
     if let Some(v) = args.idle_timeout_s {
         config.idle_timeout_s = v;
