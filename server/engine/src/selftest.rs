@@ -17,8 +17,8 @@ pub fn load(
     options: &EngineOptions,
 ) -> Result<Model, ModelError> {
     let mut model = Model::load_with(package, pinned_sha256, options)?;
+    // Without cases the identity already says so (`Model::load_with`).
     let Some(test) = &package.self_test else {
-        model.set_self_test(SelfTestOutcome::Absent);
         return Ok(model);
     };
     let outcome = run(&model, test);
